@@ -154,7 +154,7 @@ class CoxFit:
         ``at_zero=False`` gives H0(t | x = center); ``True`` gives H0(t | x = 0).
         """
         t = np.atleast_1d(np.asarray(t, dtype=float))
-        codes = self._stratum_codes(strata, t.size)
+        codes = self.stratum_codes(strata, t.size)
         out = np.empty(t.size)
         for code, baseline in enumerate(self.baselines):
             rows = codes == code
@@ -186,7 +186,8 @@ class CoxFit:
         """Return each subject's predicted survival exp(-expected events) at its own time."""
         return np.exp(-self.expected_events(time, X, strata, allow_beyond=allow_beyond))
 
-    def _stratum_codes(self, strata, n: int) -> np.ndarray:
+    def stratum_codes(self, strata, n: int) -> np.ndarray:
+        """Return each row's index into ``strata_levels`` (all 0 when unstratified)."""
         if self.strata_levels == (None,):
             if strata is not None:
                 raise InputError("strata given, but the model was fitted without strata")

@@ -1,0 +1,277 @@
+"""The Python API of a whole evaluation: cohort -> expected -> programs -> shrinkage -> verdicts.
+
+``evaluate`` wires the stages; ``Evaluation.save`` writes the evaluation folder (the file
+contract the report and the command line read; see DEVELOPERS.md).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+from scipy import stats
+
+import casemix
+from casemix._io import sha256_file, write_csv, write_json
+from casemix.cohort import build_cohort
+from casemix.errors import InputError
+from casemix.expected import expected_events
+from casemix.explain import casemix_contributions
+from casemix.programs import program_table, survival_curves
+from casemix.records import Records, read_records
+from casemix.reference import FORMAT_VERSION, ReferenceModel, resolve_analysis
+from casemix.shrinkage import Prior, empirical_bayes_prior, posterior
+from casemix.verdict import Rules, assign_verdicts, load_rules
+
+PROGRAM_COLUMNS = [
+    "program",
+    "recipients",
+    "observed",
+    "expected",
+    "oe_ratio",
+    "hr_mean",
+    "hr_lower",
+    "hr_upper",
+    "p_above",
+    "p_below",
+    "verdict",
+    "observed_survival",
+    "expected_survival",
+    "oe_lower",
+    "oe_upper",
+    "hr_median",
+    "weight",
+    "observed_survival_lower",
+    "observed_survival_upper",
+    "events_to_excess",
+    "events_to_favorable",
+    "p_more_exact",
+    "p_fewer_exact",
+    "casemix_factor",
+]
+
+CAUTIONS = (
+    "This is a statistical indicator that compares observed with expected events; it is not "
+    "a finding about the quality of care of any program.",
+    "Expected events come from a model of the reference population: case-mix factors that "
+    "the model does not contain are not adjusted for.",
+    "Small programs are uncertain: their intervals are wide and their hazard ratios are "
+    "pulled towards the reference by the prior.",
+    "Decisions about programs belong to clinical review under the applicable rules and "
+    "licensed practice, not to this output alone.",
+)
+
+
+@dataclass(frozen=True)
+class Evaluation:
+    """The result of :func:`evaluate`: tables plus the facts of the run.
+
+    Attributes
+    ----------
+    programs : DataFrame
+        One row per program, columns ``PROGRAM_COLUMNS`` (the first 13 fixed by the design).
+    recipients : DataFrame
+        ``recipient``, ``program``, ``time``, ``event``, ``expected``, ``lp``, ``stratum``.
+    exclusions : DataFrame
+        ``row``, ``recipient``, ``reason``.
+    followup : DataFrame
+        Per program: follow-up completeness and lost to follow-up.
+    casemix : DataFrame
+        Case-mix contributions per program and covariate group (see casemix.explain).
+    curves : DataFrame
+        Observed and expected survival per program on a grid of days.
+    coefficients : DataFrame
+        The reference model's terms with hazard ratios and 95% limits.
+    out_of_range : DataFrame
+        Recipients with covariates outside the reference range, per program and covariate.
+    prior : Prior
+    rules : Rules
+    run : dict
+        The content of ``run.json``.
+    """
+
+    programs: pd.DataFrame
+    recipients: pd.DataFrame
+    exclusions: pd.DataFrame
+    followup: pd.DataFrame
+    casemix: pd.DataFrame
+    curves: pd.DataFrame
+    coefficients: pd.DataFrame
+    out_of_range: pd.DataFrame
+    prior: Prior
+    rules: Rules
+    run: dict
+
+    def save(self, folder: str | Path) -> Path:
+        """Write the evaluation files into ``folder`` (created if missing), each atomically."""
+        folder = Path(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        tables = {
+            "programs.csv": self.programs,
+            "recipients.csv": self.recipients,
+            "exclusions.csv": self.exclusions,
+            "followup.csv": self.followup,
+            "casemix.csv": self.casemix,
+            "curves.csv": self.curves,
+            "coefficients.csv": self.coefficients,
+            "out_of_range.csv": self.out_of_range,
+        }
+        for name, table in tables.items():
+            write_csv(folder / name, table)
+        write_json(folder / "run.json", self.run)
+        return folder
+
+
+def coefficient_table(model: ReferenceModel, level: float = 0.95) -> pd.DataFrame:
+    """The reference model's coefficients with hazard ratios, Wald limits and p-values."""
+    fit = model.fit
+    z = stats.norm.ppf(0.5 + level / 2)
+    return pd.DataFrame(
+        {
+            "term": fit.names,
+            "group": model.design.groups,
+            "coef": fit.coef,
+            "se": fit.se,
+            "hr": np.exp(fit.coef),
+            "hr_lower": np.exp(fit.coef - z * fit.se),
+            "hr_upper": np.exp(fit.coef + z * fit.se),
+            "p_value": 2 * stats.norm.sf(np.abs(fit.coef / fit.se)),
+        }
+    )
+
+
+def _rules(rules) -> Rules:
+    if rules is None:
+        return Rules()
+    if isinstance(rules, Rules):
+        return rules
+    return load_rules(rules)
+
+
+def _records(records, model: ReferenceModel) -> Records:
+    if isinstance(records, Records):
+        return records
+    return read_records(records, model.spec)
+
+
+def evaluate(
+    cohort_records: Records | str | Path,
+    model: ReferenceModel | str | Path,
+    rules: Rules | str | Path | None = None,
+    prior: Prior | None = None,
+    *,
+    cutoff=None,
+    window=None,
+) -> Evaluation:
+    """Evaluate every program of an evaluation cohort against a reference model.
+
+    Parameters
+    ----------
+    cohort_records : Records or path
+        The evaluation cohort's records (a path is read with the model's spec).
+    model : ReferenceModel or path
+        The reference model; its outcome and horizon are used.
+    rules : Rules or path, optional
+        Verdict thresholds (default: the design's defaults).
+    prior : Prior, optional
+        Gamma prior of the hazard ratios; default empirical Bayes with mean fixed at 1.
+    cutoff : date, optional
+        Date the cohort's data are complete to (default: the records' or the spec's).
+    window : (date or None, date or None), optional
+        Transplant-date window of the cohort (default: the spec's).
+    """
+    model_path = None
+    if not isinstance(model, ReferenceModel):
+        model_path = Path(model)
+        model = ReferenceModel.load(model_path)
+    records = _records(cohort_records, model)
+    rules = _rules(rules)
+    if cutoff is None:
+        cutoff = records.cutoff
+    _, cutoff, window = resolve_analysis(model.spec, model.horizon_days, cutoff, window)
+    cohort = build_cohort(records, model.outcome, model.horizon_days, cutoff, window)
+    if cohort.frame.empty:
+        raise InputError(
+            f"no recipient of {records.source} is left in the evaluation cohort (cut-off "
+            f"{cutoff}, window {window}); check the dates and the exclusions"
+        )
+    expected = expected_events(cohort, model)
+    table = program_table(expected, level=rules.credible_level)
+    observed, exp = table["observed"].to_numpy(), table["expected"].to_numpy()
+    if prior is None:
+        prior = empirical_bayes_prior(observed, exp)
+    post = posterior(
+        observed,
+        exp,
+        prior,
+        level=rules.credible_level,
+        upper_margin=rules.upper_margin,
+        lower_margin=rules.lower_margin,
+    )
+    verdicts = assign_verdicts(observed, exp, prior, rules)
+    contributions = casemix_contributions(expected, model)
+    totals = contributions[contributions["group"] == "total"].set_index("program")["factor"]
+    programs = pd.concat(
+        [table, post.reset_index(drop=True), verdicts.reset_index(drop=True)], axis=1
+    )
+    programs["casemix_factor"] = programs["program"].map(totals).to_numpy()
+    run = _run_facts(records, cohort, model, model_path, prior, rules)
+    return Evaluation(
+        programs=programs[PROGRAM_COLUMNS],
+        recipients=expected.frame.drop(columns="expected_at_horizon"),
+        exclusions=cohort.exclusions,
+        followup=cohort.followup,
+        casemix=contributions,
+        curves=survival_curves(expected, model, level=rules.credible_level),
+        coefficients=coefficient_table(model),
+        out_of_range=expected.out_of_range,
+        prior=prior,
+        rules=rules,
+        run=run,
+    )
+
+
+def _date_text(value) -> str | None:
+    if value is None or (isinstance(value, float) and np.isnan(value)):
+        return None
+    return pd.Timestamp(value).date().isoformat()
+
+
+def _run_facts(records, cohort, model, model_path, prior, rules) -> dict[str, Any]:
+    inputs = {"records": {"path": str(records.source), "sha256": sha256_file(records.source)}}
+    if model_path is not None:
+        inputs["model"] = {"path": str(model_path), "sha256": sha256_file(model_path)}
+    fit = model.fit
+    return {
+        "casemix_version": casemix.__version__,
+        "outcome": model.outcome,
+        "horizon_days": int(model.horizon_days),
+        "cutoff": _date_text(cohort.cutoff),
+        "window": [_date_text(d) for d in cohort.window],
+        "inputs": inputs,
+        "model": {
+            "format_version": FORMAT_VERSION,
+            "fingerprint": model.fingerprint,
+            "n": fit.n,
+            "events": fit.n_events,
+            "ties": fit.ties,
+            "loglik": fit.loglik,
+            "concordance": model.concordance,
+            "reference_cutoff": model.cutoff.isoformat(),
+            "reference_window": [_date_text(d) for d in model.window],
+            "covariates": list(dict.fromkeys(model.design.groups)),
+            "strata": model.spec.strata,
+        },
+        "prior": prior.to_dict(),
+        "credible_level": rules.credible_level,
+        "rules": rules.to_dict(),
+        "counts": {
+            "read": int(cohort.n_read),
+            "kept": len(cohort.frame),
+            "excluded": len(cohort.exclusions),
+        },
+        "cautions": list(CAUTIONS),
+    }
