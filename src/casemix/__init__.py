@@ -1,4 +1,15 @@
-"""casemix: risk-adjusted observed-versus-expected evaluation of clinical programs."""
+"""casemix: risk-adjusted observed-versus-expected evaluation of clinical programs.
+
+The stages, in the order data flow through them::
+
+    spec = casemix.load_spec("spec.toml")
+    reference = casemix.read_records("reference.csv", spec, cutoff="2022-12-31")
+    model = casemix.fit_reference(reference, spec, "graft_failure", 365, "2022-12-31")
+    model.save("model.json")
+    cohort = casemix.read_records("cohort.csv", spec, cutoff="2025-06-30")
+    result = casemix.evaluate(cohort, model, rules="rules.toml")
+    result.save("results")
+"""
 
 from importlib.metadata import PackageNotFoundError, version
 
@@ -7,4 +18,31 @@ try:
 except PackageNotFoundError:  # running from a source tree that was not installed
     __version__ = "0.0.0+unknown"
 
-__all__ = ["__version__"]
+from casemix.cohort import Cohort, build_cohort
+from casemix.design import Design
+from casemix.evaluate import Evaluation, evaluate
+from casemix.records import Records, read_records
+from casemix.reference import ReferenceModel, fit_reference
+from casemix.shrinkage import Prior, empirical_bayes_prior, fixed_prior
+from casemix.spec import Spec, load_spec
+from casemix.verdict import Rules, load_rules
+
+__all__ = [
+    "Cohort",
+    "Design",
+    "Evaluation",
+    "Prior",
+    "Records",
+    "ReferenceModel",
+    "Rules",
+    "Spec",
+    "__version__",
+    "build_cohort",
+    "empirical_bayes_prior",
+    "evaluate",
+    "fit_reference",
+    "fixed_prior",
+    "load_rules",
+    "load_spec",
+    "read_records",
+]

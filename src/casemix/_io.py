@@ -23,11 +23,18 @@ def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
     try:
         with os.fdopen(handle, "wb") as out:
             out.write(data)
+        os.chmod(tmp, 0o666 & ~_umask())  # mkstemp creates 0600; give the usual permissions
         os.replace(tmp, path)
     except BaseException:
         Path(tmp).unlink(missing_ok=True)
         raise
     return path
+
+
+def _umask() -> int:
+    current = os.umask(0)
+    os.umask(current)
+    return current
 
 
 def atomic_write_text(path: str | Path, text: str) -> Path:
@@ -37,12 +44,16 @@ def atomic_write_text(path: str | Path, text: str) -> Path:
 
 def write_json(path: str | Path, obj: Any) -> Path:
     """Write ``obj`` as indented, key-sorted JSON (stable bytes for the same content)."""
-    return atomic_write_text(path, json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n")
+    return atomic_write_text(
+        path, json.dumps(obj, indent=2, sort_keys=True, allow_nan=False) + "\n"
+    )
 
 
 def write_csv(path: str | Path, frame: pd.DataFrame) -> Path:
     """Write a DataFrame as CSV without its index, atomically, with a fixed float format."""
-    return atomic_write_text(path, frame.to_csv(index=False, lineterminator="\n", float_format="%.10g"))
+    return atomic_write_text(
+        path, frame.to_csv(index=False, lineterminator="\n", float_format="%.10g")
+    )
 
 
 def sha256_file(path: str | Path) -> str:

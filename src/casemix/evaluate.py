@@ -163,6 +163,7 @@ def evaluate(
     rules: Rules | str | Path | None = None,
     prior: Prior | None = None,
     *,
+    free_mean: bool = False,
     cutoff=None,
     window=None,
 ) -> Evaluation:
@@ -177,7 +178,9 @@ def evaluate(
     rules : Rules or path, optional
         Verdict thresholds (default: the design's defaults).
     prior : Prior, optional
-        Gamma prior of the hazard ratios; default empirical Bayes with mean fixed at 1.
+        Gamma prior of the hazard ratios; default empirical Bayes from the programs.
+    free_mean : bool, default False
+        For the empirical-Bayes default: estimate the prior mean too instead of fixing it at 1.
     cutoff : date, optional
         Date the cohort's data are complete to (default: the records' or the spec's).
     window : (date or None, date or None), optional
@@ -202,7 +205,7 @@ def evaluate(
     table = program_table(expected, level=rules.credible_level)
     observed, exp = table["observed"].to_numpy(), table["expected"].to_numpy()
     if prior is None:
-        prior = empirical_bayes_prior(observed, exp)
+        prior = empirical_bayes_prior(observed, exp, free_mean=free_mean)
     post = posterior(
         observed,
         exp,
