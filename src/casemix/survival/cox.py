@@ -133,11 +133,11 @@ class CoxFit:
 
     def linear_predictor(self, X) -> np.ndarray:
         """Return X beta (uncentred), shape (n,)."""
-        return _as_design(X, self.coef.size) @ self.coef
+        return _as_design(X, self.names) @ self.coef
 
     def relative_risk(self, X) -> np.ndarray:
         """Return exp((x - center) . beta), shape (n,); refuses values that overflow."""
-        eta = (_as_design(X, self.coef.size) - self.center) @ self.coef
+        eta = (_as_design(X, self.names) - self.center) @ self.coef
         huge = eta > 700
         if huge.any():
             raise InputError(
@@ -208,13 +208,14 @@ class CoxFit:
         return np.fromiter((lookup[s] for s in strata), dtype=np.intp, count=strata.size)
 
 
-def _as_design(X, p: int) -> np.ndarray:
+def _as_design(X, names: tuple[str, ...]) -> np.ndarray:
+    """Check a covariate matrix handed to a fitted model (shape and finite values)."""
     X = np.asarray(X, dtype=float)
     if X.ndim == 1:
-        X = X[:, None] if p == 1 else X[None, :]
-    if X.ndim != 2 or X.shape[1] != p:
-        raise InputError(f"X must have {p} columns; got shape {X.shape}")
-    return X
+        X = X[:, None] if len(names) == 1 else X[None, :]
+    if X.ndim != 2 or X.shape[1] != len(names):
+        raise InputError(f"X must have {len(names)} columns ({', '.join(names)}); got {X.shape}")
+    return as_matrix(X, X.shape[0], names)[0]
 
 
 class _RiskSets:
@@ -327,6 +328,22 @@ def _chi2(statistic: float, df: int) -> TestResult:
     return TestResult(float(statistic), df, float(stats.chi2.sf(statistic, df)))
 
 
+def _check_information(info: np.ndarray, scale: np.ndarray, names: tuple[str, ...]) -> None:
+    """Refuse columns the partial likelihood carries no information about (singular I(0))."""
+    scaled = info / np.outer(scale, scale)
+    eigval, eigvec = np.linalg.eigh(scaled)
+    tiny = eigval < 1e-10 * max(eigval.max(), 1e-300)
+    if tiny.any():
+        vec = eigvec[:, np.flatnonzero(tiny)[0]]
+        listed = ", ".join(f"'{names[j]}'" for j in np.flatnonzero(np.abs(vec) > 1e-6))
+        raise InputError(
+            f"column {listed} carries no information about the hazard: within every risk set "
+            "it is constant or a combination of other columns (for example a covariate that is "
+            "constant within every stratum, or one that varies only among recipients censored "
+            "before the first event); drop it, or do not stratify on it"
+        )
+
+
 def _check_divergence(beta, cov, scale, names) -> None:
     se = np.sqrt(np.clip(np.diag(cov), 0, None))
     diverged = (se * scale > DIVERGED_SE) | (np.abs(beta) * scale > DIVERGED_COEF)
@@ -436,6 +453,7 @@ def fit_cox(
     zero = np.zeros(p)
     null = _evaluate(rs, zero)
     loglik0, score0, info0 = null[:3]
+    _check_information(info0, scale, names)
     if init is None:
         start = null
     else:
@@ -488,8 +506,11 @@ def _strata_codes(strata, n: int) -> tuple[tuple, np.ndarray]:
             f"strata are missing for {plural(int(missing.sum()), 'row')} (first at row "
             f"{int(np.flatnonzero(missing)[0])}); give every row a stratum"
         )
-    levels, codes = np.unique(strata, return_inverse=True)
-    return tuple(level.item() if hasattr(level, "item") else level for level in levels), codes
+    labels = [s.item() if hasattr(s, "item") else s for s in strata]
+    # sorted by type name first, so that mixed int and text labels have an order
+    levels = tuple(sorted(set(labels), key=lambda label: (type(label).__name__, label)))
+    lookup = {label: code for code, label in enumerate(levels)}
+    return levels, np.fromiter((lookup[s] for s in labels), dtype=np.intp, count=n)
 
 
 def _baselines(rs: _RiskSets, S0: np.ndarray, n_strata: int) -> tuple[BaselineHazard, ...]:
