@@ -299,7 +299,7 @@ def evaluate(
             step("writing the report")
             _write_report(out_dir)
         step("done")
-    _summary(result.programs, out_dir, report)
+    _summary(result, out_dir, report)
 
 
 def _write_report(folder: Path, out_file: Path | None = None, suppress_below=None, audit=None):
@@ -308,18 +308,21 @@ def _write_report(folder: Path, out_file: Path | None = None, suppress_below=Non
     return write_report(folder, out_file, suppress_below=suppress_below, audit_folder=audit)
 
 
-def _summary(programs: pd.DataFrame, folder: Path, report: bool) -> None:
-    table = Table(title="Programs", title_justify="left")
+def _summary(result, folder: Path, report: bool) -> None:
+    programs = result.programs
+    level = f"{100 * result.rules.credible_level:g}%"
+    table = Table(title="Programs (HR: shrunken hazard ratio)", title_justify="left", box=None)
     for name, justify in [
         ("program", "left"),
         ("recipients", "right"),
-        ("observed", "right"),
-        ("expected", "right"),
+        ("O", "right"),
+        ("E", "right"),
         ("O/E", "right"),
-        ("hazard ratio (credible interval)", "right"),
+        ("HR", "right"),
+        (f"{level} credible", "right"),
         ("verdict", "left"),
     ]:
-        table.add_column(name, justify=justify)
+        table.add_column(name, justify=justify, no_wrap=True)
     for row in programs.itertuples(index=False):
         table.add_row(
             str(row.program),
@@ -327,7 +330,8 @@ def _summary(programs: pd.DataFrame, folder: Path, report: bool) -> None:
             str(row.observed),
             f"{row.expected:.1f}",
             f"{row.oe_ratio:.2f}",
-            f"{row.hr_mean:.2f} ({row.hr_lower:.2f} to {row.hr_upper:.2f})",
+            f"{row.hr_mean:.2f}",
+            f"{row.hr_lower:.2f} to {row.hr_upper:.2f}",
             str(row.verdict).replace("_", " "),
         )
     out.print(table)
@@ -474,7 +478,7 @@ def demo(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
         f"{len(cohort.frame)} cohort recipients in {len(result.programs)} programs"
     )
-    _summary(result.programs, out_dir, True)
+    _summary(result, out_dir, True)
 
 
 def main() -> None:
