@@ -1,0 +1,23 @@
+"""The self-contained HTML report of an evaluation, and the page pieces it is built from.
+
+``write_report(folder)`` reads an evaluation folder and writes ``report.html``: inline CSS
+and SVG figures (matplotlib), no scripts and no outside requests. ``casemix.report.page``
+holds the general pieces (sections, tables, figures) that other pages reuse.
+"""
+
+from casemix.report.build import render_report, write_report
+from casemix.report.page import Section, facts_html, figure_svg, render_page, table_html
+from casemix.report.public import write_public_tables
+from casemix.report.suppress import suppress_counts
+
+__all__ = [
+    "Section",
+    "facts_html",
+    "figure_svg",
+    "render_page",
+    "render_report",
+    "suppress_counts",
+    "table_html",
+    "write_public_tables",
+    "write_report",
+]

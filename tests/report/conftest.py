@@ -1,0 +1,248 @@
+"""A small but realistic evaluation folder, written with the exact file contract.
+
+The data are a seeded simulation with a known truth (invented programs of the fictional
+Lorran Valley network): exponential event times with a known baseline hazard, so each
+recipient's expected count is exactly its cumulative hazard. The derived columns are
+computed with reference libraries, not with casemix: Kaplan-Meier curves and numbers at risk
+with lifelines KaplanMeierFitter, Garwood limits with scipy.stats.chi2, gamma posteriors with
+scipy.stats.gamma, the coefficient table with lifelines CoxPHFitter.
+"""
+
+from __future__ import annotations
+
+import json
+from collections import Counter
+from html.parser import HTMLParser
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from lifelines import CoxPHFitter, KaplanMeierFitter
+from scipy import stats
+
+HORIZON = 365
+BASELINE = 2.5e-4  # events per day at lp = 0
+PRIOR = (2.0, 2.0)  # gamma shape, rate
+PROGRAMS = {  # code: (recipients, true hazard ratio)
+    "LV01": (260, 1.0),
+    "LV02": (180, 1.7),
+    "LV03": (320, 0.55),
+    "LV04": (90, 1.1),
+    "LV05": (8, 1.0),
+    "LV06": (140, 0.9),
+}
+
+
+def _recipients(rng: np.random.Generator, programs: dict) -> pd.DataFrame:
+    frames = []
+    for code, (n, hr) in programs.items():
+        age = rng.normal(52, 12, n).round()
+        diabetes = rng.binomial(1, 0.3, n)
+        deceased = rng.binomial(1, 0.7, n)
+        lp = 0.03 * (age - 52) + 0.45 * diabetes + 0.35 * deceased
+        event_time = rng.exponential(1.0 / (BASELINE * np.exp(lp) * hr))
+        censor = rng.uniform(120, 900, n)  # staggered entry: some have partial follow-up
+        end = np.minimum(censor, HORIZON)
+        event = event_time <= end
+        time = np.ceil(np.where(event, event_time, end))  # whole days, as in an extract
+        frames.append(pd.DataFrame({
+            "program": code, "time": time, "event": event.astype(int),
+            "lp": lp, "age": age, "diabetes": diabetes, "deceased": deceased,
+        }))
+    frame = pd.concat(frames, ignore_index=True)
+    frame["expected"] = BASELINE * np.exp(frame["lp"]) * frame["time"]
+    frame.insert(0, "recipient", [f"R{i:05d}" for i in range(len(frame))])
+    frame["stratum"] = ""
+    return frame
+
+
+def _verdict_distances(o: int, e: float) -> tuple[float, float]:
+    a, b = PRIOR
+    excess = next(k for k in range(10_000) if stats.gamma.sf(1, a + o + k, scale=1 / (b + e))
+                  >= 0.975)
+    favorable = next((m for m in range(o + 1)
+                      if stats.gamma.cdf(1, a + o - m, scale=1 / (b + e)) >= 0.975), np.nan)
+    return float(excess), float(favorable)
+
+
+def _program_row(code: str, group: pd.DataFrame) -> tuple[dict, pd.DataFrame]:
+    a, b = PRIOR
+    o, e = int(group["event"].sum()), float(group["expected"].sum())
+    km = KaplanMeierFitter().fit(group["time"], group["event"])
+    ci = km.confidence_interval_survival_function_
+    table = km.event_table
+    curve = pd.DataFrame({
+        "program": code, "time": km.survival_function_.index.to_numpy(float),
+        "observed": km.survival_function_.iloc[:, 0].to_numpy(),
+        "observed_lower": ci.iloc[:, 0].to_numpy(), "observed_upper": ci.iloc[:, 1].to_numpy(),
+        "at_risk": table["at_risk"].to_numpy(),
+    })
+    hazard = BASELINE * np.exp(group["lp"].to_numpy())
+    curve["expected"] = [np.exp(-hazard * t).mean() for t in curve["time"]]
+    post = stats.gamma(a + o, scale=1 / (b + e))
+    excess, favorable = _verdict_distances(o, e)
+    p_above, p_below = post.sf(1), post.cdf(1)
+    verdict = ("too_little_data" if e < 1 else "excess" if p_above >= 0.975
+               else "favorable" if p_below >= 0.975 else "consistent")
+    row = {
+        "program": code, "recipients": len(group), "observed": o, "expected": e,
+        "oe_ratio": o / e, "hr_mean": post.mean(), "hr_lower": post.ppf(0.025),
+        "hr_upper": post.ppf(0.975), "p_above": p_above, "p_below": p_below,
+        "verdict": verdict, "observed_survival": float(km.predict(HORIZON)),
+        "expected_survival": float(np.exp(-hazard * HORIZON).mean()),
+        "oe_lower": (stats.chi2.ppf(0.025, 2 * o) / 2 if o else 0.0) / e,
+        "oe_upper": stats.chi2.ppf(0.975, 2 * o + 2) / 2 / e,
+        "hr_median": post.median(), "weight": e / (b + e),
+        "observed_survival_lower": float(ci.iloc[-1, 0]),
+        "observed_survival_upper": float(ci.iloc[-1, 1]),
+        "events_to_excess": np.nan if verdict == "too_little_data" else excess,
+        "events_to_favorable": np.nan if verdict == "too_little_data" else favorable,
+        "p_more_exact": stats.poisson.sf(o - 1, e), "p_fewer_exact": stats.poisson.cdf(o, e),
+    }
+    return row, curve
+
+
+def _casemix(recipients: pd.DataFrame) -> pd.DataFrame:
+    parts = {"recipient age": 0.03 * (recipients["age"] - 52),
+             "diabetes": 0.45 * recipients["diabetes"],
+             "donor type": 0.35 * recipients["deceased"]}
+    rows = []
+    for code, index in recipients.groupby("program", sort=True).groups.items():
+        total = 0.0
+        for group, values in parts.items():
+            contribution = float(values[index].mean() - values.mean())
+            total += contribution
+            rows.append({"program": code, "group": group, "contribution": contribution,
+                         "factor": np.exp(contribution)})
+        rows.append({"program": code, "group": "total", "contribution": total,
+                     "factor": np.exp(total)})
+    return pd.DataFrame(rows)
+
+
+def _coefficients(recipients: pd.DataFrame) -> tuple[pd.DataFrame, float]:
+    cph = CoxPHFitter().fit(recipients[["time", "event", "age", "diabetes", "deceased"]],
+                            "time", "event")
+    s = cph.summary
+    table = pd.DataFrame({
+        "term": s.index.to_list(), "coef": s["coef"].to_numpy(), "se": s["se(coef)"].to_numpy(),
+        "hr": s["exp(coef)"].to_numpy(), "hr_lower": s["exp(coef) lower 95%"].to_numpy(),
+        "hr_upper": s["exp(coef) upper 95%"].to_numpy(), "p_value": s["p"].to_numpy(),
+    })
+    return table, float(cph.concordance_index_)
+
+
+def write_evaluation_folder(folder: Path, programs: dict | None = None, seed: int = 11,
+                            cautions: tuple[str, ...] = ()) -> Path:
+    """Write the eight files of an evaluation folder and return the folder."""
+    programs = PROGRAMS if programs is None else programs
+    rng = np.random.default_rng(seed)
+    recipients = _recipients(rng, programs)
+    rows, curves = zip(*(_program_row(code, g) for code, g in
+                         recipients.groupby("program", sort=False)), strict=True)
+    folder.mkdir(parents=True, exist_ok=True)
+    pd.DataFrame(list(rows)).to_csv(folder / "programs.csv", index=False)
+    recipients[["recipient", "program", "time", "event", "expected", "lp", "stratum"]].to_csv(
+        folder / "recipients.csv", index=False)
+    pd.concat(curves, ignore_index=True).to_csv(folder / "curves.csv", index=False)
+    _casemix(recipients).to_csv(folder / "casemix.csv", index=False)
+    coefficients, concordance = _coefficients(recipients)
+    coefficients.to_csv(folder / "coefficients.csv", index=False)
+    pd.DataFrame({"row": [3, 17, 18, 40], "recipient": ["X1", "X2", "X3", "X4"],
+                  "reason": ["event before transplant", "missing program",
+                             "missing program", "transplant after cut-off"]}).to_csv(
+        folder / "exclusions.csv", index=False)
+    followup = recipients.groupby("program", sort=False).agg(recipients=("time", "size"))
+    followup["completeness"] = np.linspace(0.91, 0.99, len(followup))
+    followup["lost_to_followup"] = (followup["recipients"] // 25).astype(int)
+    followup.reset_index().to_csv(folder / "followup.csv", index=False)
+    run = {
+        "casemix_version": "0.1.0", "outcome": "graft_failure", "horizon_days": HORIZON,
+        "cutoff": "2025-06-30", "window": ["2022-01-01", "2024-12-31"],
+        "inputs": {"cohort": {"path": "cohort.csv", "sha256": "0" * 64},
+                   "model": {"path": "model.json", "sha256": "1" * 64}},
+        "model": {"fingerprint": "ab12cd34", "n": 20412, "events": 1730, "ties": "efron",
+                  "loglik": -15234.5, "concordance": concordance, "format_version": 1},
+        "prior": {"shape": PRIOR[0], "rate": PRIOR[1], "mean": 1.0, "method": "fixed",
+                  "free_mean": False, "log_marginal": None, "at_boundary": False,
+                  "note": "A fixed gamma prior with mean 1 was used."},
+        "credible_level": 0.95,
+        "rules": {"probability": 0.975, "upper_margin": 1.0, "lower_margin": 1.0,
+                  "min_expected": 1.0, "credible_level": 0.95},
+        "counts": {"read": len(recipients) + 4, "kept": len(recipients), "excluded": 4},
+        "cautions": list(cautions),
+    }
+    (folder / "run.json").write_text(json.dumps(run, indent=2), encoding="utf-8")
+    return folder
+
+
+@pytest.fixture(scope="session")
+def evaluation_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The default folder: six programs, one of them small (8 recipients)."""
+    return write_evaluation_folder(tmp_path_factory.mktemp("evaluation"))
+
+
+@pytest.fixture(scope="session")
+def folder_factory():
+    """The folder writer itself, for tests that need other programs or cautions."""
+    return write_evaluation_folder
+
+
+_VOID = {"area", "base", "br", "col", "embed", "hr", "img", "input", "link", "meta", "source",
+         "track", "wbr"}
+
+
+class StrictHTML(HTMLParser):
+    """Stdlib HTML parser that records unbalanced tags, repeated ids and broken #links."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.stack: list[str] = []
+        self.problems: list[str] = []
+        self.ids: list[str] = []
+        self.links: list[str] = []
+        self.text: list[str] = []
+
+    def handle_starttag(self, tag, attrs):
+        self._attrs(attrs)
+        if tag not in _VOID:
+            self.stack.append(tag)
+
+    def handle_startendtag(self, tag, attrs):
+        self._attrs(attrs)
+
+    def _attrs(self, attrs):
+        for name, value in attrs:
+            if name == "id":
+                self.ids.append(value)
+            if name in ("href", "xlink:href") and value and value.startswith("#"):
+                self.links.append(value[1:])
+
+    def handle_endtag(self, tag):
+        if not self.stack or self.stack[-1] != tag:
+            self.problems.append(f"</{tag}> closes <{self.stack[-1] if self.stack else ''}>")
+            return
+        self.stack.pop()
+
+    def handle_data(self, data):
+        self.text.append(data)
+
+
+def parse_strict(html: str) -> StrictHTML:
+    """Parse ``html`` and fail the test on unbalanced tags, repeated ids or broken links."""
+    parser = StrictHTML()
+    parser.feed(html)
+    parser.close()
+    repeated = sorted(i for i, n in Counter(parser.ids).items() if n > 1)
+    broken = sorted(set(parser.links) - set(parser.ids))
+    assert not parser.problems, parser.problems[:5]
+    assert parser.stack == [], parser.stack
+    assert not repeated, repeated[:5]
+    assert not broken, broken[:5]
+    return parser
+
+
+@pytest.fixture(scope="session")
+def strict_html():
+    """A function that parses HTML strictly (see :func:`parse_strict`)."""
+    return parse_strict

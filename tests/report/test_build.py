@@ -1,0 +1,121 @@
+"""Tests of the whole report built from an evaluation folder."""
+
+from __future__ import annotations
+
+import json
+import re
+
+import pandas as pd
+import pytest
+
+from casemix.errors import InputError
+from casemix.report import render_report, write_report
+from casemix.report.build import REPORT_CAUTIONS
+
+HOSTILE = "<script>alert(1)</script>"
+PROGRAMS = {"LV01": (150, 1.0), HOSTILE: (120, 1.6), "LV03": (9, 1.0), "LV04": (200, 0.6)}
+
+
+@pytest.fixture(scope="module")
+def report(evaluation_folder):
+    return render_report(evaluation_folder)
+
+
+@pytest.fixture(scope="module")
+def hostile_folder(folder_factory, tmp_path_factory):
+    return folder_factory(tmp_path_factory.mktemp("hostile"), PROGRAMS,
+                          cautions=("Run caution with <b>markup</b>.",
+                                    "Small programs need care (recorded by the run)."))
+
+
+@pytest.fixture(scope="module")
+def hostile_report(hostile_folder):
+    return render_report(hostile_folder)
+
+
+@pytest.fixture(scope="module")
+def small_folder(folder_factory, tmp_path_factory):
+    return folder_factory(tmp_path_factory.mktemp("small"), {"LV01": (60, 1.0),
+                                                             "LV02": (70, 1.2)})
+
+
+def test_report_parses_and_has_the_parts_in_order(report, strict_html):
+    parser = strict_html(report)
+    order = ["evaluated", "cautions", "programs", "scale", "each-program", "data-quality",
+             "model"]
+    positions = [parser.ids.index(anchor) for anchor in order]
+    assert positions == sorted(positions)
+    assert "audit" not in parser.ids
+
+
+def test_report_contains_every_program(report, evaluation_folder):
+    codes = pd.read_csv(evaluation_folder / "programs.csv")["program"]
+    for position, code in enumerate(sorted(codes)):
+        assert f'id="program-{position + 1}-{code.lower()}"' in report
+        assert f">{code}</a>" in report  # linked from the table and the program index
+
+
+def test_report_requests_nothing_from_outside(report):
+    assert not re.search(r"""(?:src|href|action)\s*=\s*["']?\s*(?:https?:)?//""", report, re.I)
+    assert not re.search(r"url\(\s*['\"]?\s*(?:https?:)?//|@import", report, re.I)
+    assert "<script" not in report.lower() and "<link" not in report.lower()
+
+
+def test_report_states_the_standing_cautions_once(report, hostile_report):
+    for _, caution in REPORT_CAUTIONS:
+        assert caution.replace("'", "&#39;") in report
+    # hostile_folder records a caution about small programs: ours on that topic is left out
+    assert "Small programs are uncertain" not in hostile_report
+    assert "quality of care" in hostile_report and "clinical review" in hostile_report
+
+
+def test_report_escapes_a_hostile_program_name(hostile_report, strict_html):
+    strict_html(hostile_report)
+    assert HOSTILE not in hostile_report and "<b>markup</b>" not in hostile_report
+    # in the table, the program index, its sub-section and two figure descriptions
+    assert hostile_report.count("&lt;script&gt;alert(1)&lt;/script&gt;") >= 5
+    assert "Run caution with &lt;b&gt;markup&lt;/b&gt;." in hostile_report
+
+
+def test_small_counts_are_suppressed_and_said_so(hostile_folder, hostile_report):
+    hidden = render_report(hostile_folder, suppress_below=11)
+    programs = pd.read_csv(hostile_folder / "programs.csv")
+    small = programs.loc[programs["program"] == "LV03"].iloc[0]
+    cell = f'<td class="num">{int(small["recipients"])}</td>'  # 9 recipients
+    assert cell in hostile_report and cell not in hidden
+    assert '<td class="num">&lt;11</td>' in hidden
+    assert "Counts from 1 to 10 are hidden and shown as “&lt;11”" in hidden
+    assert "are hidden" not in hostile_report
+
+
+def test_report_is_reproducible_and_written_atomically(evaluation_folder, report, tmp_path):
+    out = write_report(evaluation_folder, tmp_path / "out" / "r.html")
+    assert out.read_text(encoding="utf-8") == report
+    assert sorted(p.name for p in out.parent.iterdir()) == ["r.html"]  # no temporary left
+
+
+def test_default_output_is_report_html_in_the_folder(small_folder):
+    assert write_report(small_folder) == small_folder / "report.html"
+
+
+def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html):
+    audit = tmp_path / "audit"
+    audit.mkdir()
+    (audit / "findings.json").write_text(json.dumps([f"hazards for {HOSTILE} vary"]),
+                                         encoding="utf-8")
+    pd.DataFrame({"covariate": ["age", "global"], "statistic": [11.45, 17.66]}).to_csv(
+        audit / "ph_test.csv", index=False)
+    pd.DataFrame({"b": range(250)}).to_csv(audit / "bootstrap_expected.csv", index=False)
+    html = render_report(small_folder, audit_folder=audit)
+    parser = strict_html(html)
+    assert parser.ids[-1] == "audit"
+    assert "hazards for &lt;script&gt;" in html
+    assert "<h3>Ph test</h3>" in html and "<h3>Bootstrap expected</h3>" in html
+    assert "The first 200 of 250 rows; the rest are in bootstrap_expected.csv." in html
+
+
+def test_bad_arguments(evaluation_folder, tmp_path):
+    with pytest.raises(InputError, match=r"suppress_below must be a whole number of at least 2"):
+        render_report(evaluation_folder, suppress_below=1)
+    with pytest.raises(InputError, match=r"audit folder not found"):
+        render_report(evaluation_folder, audit_folder=tmp_path / "none")

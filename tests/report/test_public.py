@@ -1,0 +1,28 @@
+"""Tests of the public copies of an evaluation's tables."""
+
+from __future__ import annotations
+
+import pandas as pd
+
+from casemix.report import write_public_tables
+
+
+def test_public_tables_hide_small_counts_and_leave_out_records(evaluation_folder, tmp_path):
+    out = write_public_tables(evaluation_folder, tmp_path / "public", 11)
+    assert sorted(p.name for p in out.iterdir()) == [
+        "casemix.csv", "coefficients.csv", "curves.csv", "exclusions_by_reason.csv",
+        "followup.csv", "programs.csv"]  # no recipient-level file
+    programs = pd.read_csv(out / "programs.csv", dtype=str)
+    source = pd.read_csv(evaluation_folder / "programs.csv", dtype=str)
+    small = programs.loc[programs["program"] == "LV05"].iloc[0]  # 8 recipients in the fixture
+    assert source.loc[source["program"] == "LV05", "recipients"].item() == "8"
+    assert small["recipients"] == "<11"
+    large = programs.loc[programs["program"] == "LV03"].iloc[0]
+    assert large["recipients"] == "320"
+    reasons = pd.read_csv(out / "exclusions_by_reason.csv", dtype=str)
+    # the fixture excludes 4 records: 2 for a missing program, then 1 each (by reason)
+    assert reasons.to_dict("list") == {
+        "reason": ["missing program", "event before transplant", "transplant after cut-off"],
+        "records": ["<11", "<11", "<11"]}
+    curves = pd.read_csv(out / "curves.csv", dtype=str)
+    assert "<11" in set(curves["at_risk"])
