@@ -77,7 +77,7 @@ def _one_program(program, hazard, lp_groups, groups, nodes, weights) -> list[tup
         total = float(np.log(expected / average))
     out = [
         (program, name, float(part), float(np.exp(part)), np.nan, np.nan)
-        for name, part in zip(groups, parts)
+        for name, part in zip(groups, parts, strict=True)
     ]
     out.append((program, TOTAL, total, float(np.exp(total)), expected, average))
     return out

@@ -146,7 +146,10 @@ class ReferenceModel:
             "spec": self.spec.to_dict(),
             "design": self.design.to_dict(),
             "coefficients": _coefficients_dict(self.fit),
-            "baseline": [_baseline_dict(s, b) for s, b in zip(self.fit.strata_levels, self.fit.baselines)],
+            "baseline": [
+                _baseline_dict(s, b)
+                for s, b in zip(self.fit.strata_levels, self.fit.baselines, strict=True)
+            ],
             "fit": _facts_dict(self.fit, self.concordance),
             "fingerprint": {
                 "sha256": self.fingerprint,
