@@ -394,6 +394,8 @@ def audit(
     cutoff: Annotated[
         str | None, typer.Option("--cutoff", help="Cut-off of the cohort records (YYYY-MM-DD).")
     ] = None,
+    window_from: FromOption = None,
+    window_to: ToOption = None,
 ) -> None:
     """Run the statistician's checks of a reference model (and of an evaluation, with --cohort).
 
@@ -404,13 +406,13 @@ def audit(
     from casemix.records import read_records
     from casemix.reference import ReferenceModel
 
+    cut = _date(cutoff, "--cutoff")
+    window = (_date(window_from, "--from"), _date(window_to, "--to"))
     with _guarded():
         reference = ReferenceModel.load(model)
         ref_records = read_records(reference_records, reference.spec, cutoff=reference.cutoff)
         cohort_records = (
-            None
-            if cohort is None
-            else read_records(cohort, reference.spec, cutoff=_date(cutoff, "--cutoff"))
+            None if cohort is None else read_records(cohort, reference.spec, cutoff=cut)
         )
         result = run_audit(
             ref_records,
@@ -419,6 +421,8 @@ def audit(
             bootstrap=bootstrap,
             seed=seed,
             progress=err.is_terminal,
+            cutoff=cut,
+            window=None if window == (None, None) else window,
         )
         result.save(out_dir)
     for finding in result.findings:

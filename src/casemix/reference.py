@@ -20,13 +20,12 @@ import numpy as np
 
 import casemix
 from casemix._io import write_json
-from casemix.audit.concordance import concordance
 from casemix.cohort import Cohort, build_cohort
 from casemix.design import Design
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning
 from casemix.records import Records
 from casemix.spec import Spec, load_spec, spec_from_dict
-from casemix.survival import BaselineHazard, CoxFit, TestResult, fit_cox
+from casemix.survival import BaselineHazard, CoxFit, TestResult, concordance, fit_cox
 
 FORMAT_VERSION = 1
 MODEL_KIND = "casemix reference model"

@@ -1,0 +1,150 @@
+"""Overdispersion of program O/E ratios (Spiegelhalter 2005, "Funnel plots for comparing
+institutional performance", section on overdispersion).
+
+Each program's O/E is turned into a z-score under the null HR = 1 with the Poisson standard
+error, :math:`z_i = (O_i/E_i - 1)\\sqrt{E_i}`. The z-scores are winsorised (values beyond the
+10% and 90% quantiles are pulled in to them, numpy's default linear quantile) so that a few
+outlying programs do not inflate the estimate, and
+
+.. math:: \\hat\\phi = \\frac1n \\sum_i z_{w,i}^2, \\qquad n\\hat\\phi \\sim \\chi^2_{n-1},
+          \\qquad \\hat\\tau^2 = \\max\\Bigl(0, \\frac{n\\hat\\phi - (n-1)}
+          {\\sum_i w_i - \\sum_i w_i^2 / \\sum_i w_i}\\Bigr), \\quad w_i = 1/s_i^2 = E_i.
+
+phi inflates the funnel limits multiplicatively (1 +- z sqrt(phi / E)); tau^2 adds a
+between-program variance (1 +- z sqrt(1/E + tau^2)). Short formulas, written out here; no
+library offers them.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from scipy import stats
+
+from casemix.errors import InputError
+from casemix.poisson import as_observed_expected, check_level
+
+__all__ = ["ADJUSTMENTS", "Overdispersion", "adjusted_funnel_limits", "overdispersion"]
+
+ADJUSTMENTS = ("multiplicative", "additive")
+MIN_PROGRAMS = 3
+
+
+@dataclass(frozen=True)
+class Overdispersion:
+    """Dispersion of program z-scores and its test.
+
+    Attributes
+    ----------
+    z : ndarray, shape (n,)
+        z-scores (O/E - 1) sqrt(E), in input order.
+    z_winsorised : ndarray, shape (n,)
+    limits : tuple of float
+        The quantiles the z-scores were winsorised to (low, high).
+    phi : float
+        Mean squared winsorised z-score (1 when there is no overdispersion).
+    statistic : float
+        n phi.
+    df : int
+        n - 1.
+    p_value : float
+        P(chi2(n - 1) >= n phi).
+    tau2 : float
+        Additive between-program variance of the O/E ratio (0 when n phi <= n - 1).
+    """
+
+    z: np.ndarray
+    z_winsorised: np.ndarray
+    limits: tuple[float, float]
+    phi: float
+    statistic: float
+    df: int
+    p_value: float
+    tau2: float
+
+
+def overdispersion(observed, expected, *, winsor: float = 0.1) -> Overdispersion:
+    """Estimate multiplicative (phi) and additive (tau^2) overdispersion of O/E ratios.
+
+    Parameters
+    ----------
+    observed : array_like of int, shape (n,)
+        Observed events per program.
+    expected : array_like of float, shape (n,)
+        Expected events per program, > 0 (drop programs with E = 0 first: they carry no
+        information about the ratio).
+    winsor : float, default 0.1
+        Fraction winsorised at each end, in [0, 0.5).
+
+    Returns
+    -------
+    Overdispersion
+    """
+    o, e = as_observed_expected(observed, expected)
+    if o.ndim != 1 or o.size < MIN_PROGRAMS:
+        raise InputError(
+            f"overdispersion needs at least {MIN_PROGRAMS} programs, one value each; got "
+            f"shape {o.shape}"
+        )
+    if (e <= 0).any():
+        raise InputError(
+            f"expected must be > 0 for every program; program(s) at positions "
+            f"{np.flatnonzero(e <= 0).tolist()} have E = 0: leave them out of this check"
+        )
+    if not 0 <= winsor < 0.5:
+        raise InputError(f"winsor must be in [0, 0.5) (for example 0.1), got {winsor!r}")
+    z = (o - e) / np.sqrt(e)
+    low, high = np.quantile(z, [winsor, 1.0 - winsor])
+    zw = np.clip(z, low, high)
+    n = z.size
+    phi = float(np.mean(zw**2))
+    statistic = n * phi
+    w = e  # 1 / s^2 with s^2 = 1/E on the O/E scale
+    tau2 = max(0.0, (statistic - (n - 1)) / (w.sum() - (w**2).sum() / w.sum()))
+    return Overdispersion(
+        z=z,
+        z_winsorised=zw,
+        limits=(float(low), float(high)),
+        phi=phi,
+        statistic=statistic,
+        df=n - 1,
+        p_value=float(stats.chi2.sf(statistic, n - 1)),
+        tau2=float(tau2),
+    )
+
+
+def adjusted_funnel_limits(
+    expected, dispersion: Overdispersion, *, level: float = 0.95, method: str = "multiplicative"
+) -> tuple[np.ndarray, np.ndarray]:
+    """Funnel limits for O/E widened for overdispersion (normal approximation).
+
+    Parameters
+    ----------
+    expected : array_like of float, any shape
+        Expected events, > 0 (for example a grid to draw the funnel on).
+    dispersion : Overdispersion
+        From :func:`overdispersion`.
+    level : float, default 0.95
+        Coverage of the limits.
+    method : {"multiplicative", "additive"}, default "multiplicative"
+        1 +- z sqrt(max(phi, 1) / E), or 1 +- z sqrt(1 / E + tau^2).
+
+    Returns
+    -------
+    lower, upper : ndarray of float, same shape as `expected`
+        Limits on the O/E scale; the lower limit is clipped at 0.
+    """
+    level = check_level(level)
+    if method not in ADJUSTMENTS:
+        raise InputError(f"unknown adjustment {method!r}; use one of {', '.join(ADJUSTMENTS)}")
+    e = np.asarray(expected, dtype=float)
+    if not np.isfinite(e).all() or (e <= 0).any():
+        raise InputError("expected must be finite and > 0 to draw funnel limits")
+    zq = stats.norm.isf((1.0 - level) / 2.0)
+    if method == "multiplicative":
+        # limits are only ever widened: phi below 1 is taken as no overdispersion
+        half = zq * np.sqrt(max(dispersion.phi, 1.0) / e)
+    else:
+        half = zq * np.sqrt(1.0 / e + dispersion.tau2)
+    return np.maximum(1.0 - half, 0.0), 1.0 + half

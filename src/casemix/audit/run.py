@@ -1,0 +1,331 @@
+"""The whole audit in one call: ``run_audit(...) -> Audit``, and ``Audit.save(folder)``.
+
+The reference records must be the model's own fitting data (checked by the data
+fingerprint); they give the model-level checks (proportional hazards, discrimination,
+calibration, cross-checks). An evaluation cohort adds the per-program checks (overdispersion,
+prior sensitivity, bootstrap and delta-method uncertainty of E, own-data influence,
+multiplicity).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from casemix._io import atomic_write_text, write_csv, write_json
+from casemix.audit._optional import available
+from casemix.audit.bootstrap import ProgramArrays, bootstrap_expected, delta_expected
+from casemix.audit.calibration import (
+    calibration_by_horizon,
+    calibration_by_risk,
+    calibration_by_size,
+    calibration_regression,
+)
+from casemix.audit.crosscheck import crosscheck_lifelines, crosscheck_statsmodels
+from casemix.audit.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
+from casemix.audit.findings import THRESHOLDS, all_findings
+from casemix.audit.influence import leave_one_program_out
+from casemix.audit.multiplicity import fdr_table
+from casemix.audit.page import audit_html
+from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals
+from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
+from casemix.cohort import build_cohort
+from casemix.errors import InputError
+from casemix.evaluate import evaluate
+from casemix.records import Records, read_records
+from casemix.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.survival import concordance
+
+__all__ = ["HORIZONS", "Audit", "run_audit"]
+
+# follow-up cuts (days) for calibration by horizon, kept when within the model's horizon
+HORIZONS = (30, 90, 365, 1095)
+
+
+@dataclass(frozen=True)
+class Audit:
+    """The audit's tables and findings (a snapshot; see :func:`run_audit`).
+
+    Attributes
+    ----------
+    tables : dict of str to DataFrame
+        Tidy tables by name (the CSV file names without ``.csv``): always ``ph``,
+        ``concordance``, ``calibration_risk``, ``calibration_regression``,
+        ``calibration_horizon``, ``crosscheck``, ``coefficients``; with a cohort also
+        ``calibration_size``, ``overdispersion``, ``dispersion_programs``,
+        ``prior_sensitivity``, ``prior_verdicts``, ``bootstrap``,
+        ``bootstrap_coefficients``, ``influence``, ``fdr``.
+    schoenfeld : DataFrame
+        Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot.
+    findings : tuple of str
+        Plain-words findings, most important checks first.
+    facts : dict
+        Settings and facts of the run (seed, replicates, model fingerprint, thresholds).
+    """
+
+    tables: dict[str, pd.DataFrame]
+    schoenfeld: pd.DataFrame
+    findings: tuple[str, ...]
+    facts: dict[str, Any] = field(default_factory=dict)
+
+    def save(self, folder: str | Path) -> Path:
+        """Write every table as CSV, ``findings.json``, ``audit.json`` and ``audit.html``.
+
+        Each file is written atomically; ``folder`` is created if missing.
+        """
+        folder = Path(folder)
+        folder.mkdir(parents=True, exist_ok=True)
+        for name, table in sorted(self.tables.items()):
+            write_csv(folder / f"{name}.csv", table)
+        write_json(folder / "findings.json", list(self.findings))
+        write_json(folder / "audit.json", self.facts)
+        atomic_write_text(folder / "audit.html", audit_html(self))
+        return folder
+
+
+def _load(model, reference_records):
+    if not isinstance(model, ReferenceModel):
+        model = ReferenceModel.load(model)
+    records = reference_records
+    if not isinstance(records, Records):
+        records = read_records(records, model.spec, cutoff=model.cutoff)
+    data = reference_data(
+        records, model.spec, model.outcome, model.horizon_days, model.cutoff, model.window,
+        design=model.design,
+    )  # fmt: skip
+    if data.fingerprint() != model.fingerprint:
+        raise InputError(
+            f"the reference records ({records.source}) are not the data the model was fitted "
+            "on (their fingerprint differs from the model's): pass the same reference extract, "
+            "read with the same spec and cut-off"
+        )
+    return model, data
+
+
+def _transforms(data) -> tuple[list[str], list[str]]:
+    """The time transforms that apply, and a note for each one left out."""
+    at_zero = int(((data.time == 0) & (data.event == 1)).sum())
+    if not at_zero:
+        return list(TRANSFORMS), []
+    note = f"the log time transform was left out: {at_zero} events happened at time 0"
+    return [t for t in TRANSFORMS if t != "log"], [note]
+
+
+def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.DataFrame]:
+    fit = model.fit
+    args = (data.time, data.event, data.X)
+    ph = pd.concat(
+        [ph_test(fit, *args, t, strata=data.strata).assign(transform=t) for t in transforms]
+    ).reset_index()
+    lp = fit.linear_predictor(data.X)
+    e = fit.expected_events(data.time, data.X, data.strata)
+    c = concordance(data.time, data.event, lp)
+    horizons = [h for h in HORIZONS if h < model.horizon_days] + [model.horizon_days]
+    horizons = [h for h in horizons if h <= data.time.max()]
+    tables = {
+        "ph": ph[["transform", "term", "statistic", "df", "p_value"]],
+        "concordance": pd.DataFrame([{"population": "reference", **asdict(c)}]),
+        "calibration_risk": calibration_by_risk(data.event, e, lp).assign(population="reference"),
+        "calibration_regression": calibration_regression(data.event, e, lp)
+        .reset_index()
+        .assign(population="reference"),
+        "calibration_horizon": calibration_by_horizon(
+            fit, data.time, data.event, data.X, horizons, strata=data.strata
+        ).assign(population="reference"),
+    }
+    checks = [crosscheck_statsmodels(fit, *args, data.strata)] if available("statsmodels") else []
+    if fit.ties == "efron" and available("lifelines"):
+        checks.append(crosscheck_lifelines(fit, *args, reference_programs, data.strata))
+    tables["crosscheck"] = pd.concat(checks, ignore_index=True)
+    tables["coefficients"] = pd.DataFrame(
+        {"term": list(fit.names), "coef": fit.coef, "se": fit.se, "hr": np.exp(fit.coef)}
+    )
+    return tables
+
+
+def _evaluation(cohort_records, model, cutoff, window):
+    """The evaluation and the cohort's arrays, rows aligned with ``evaluation.recipients``."""
+    records = cohort_records
+    if not isinstance(records, Records):
+        records = read_records(records, model.spec, cutoff=cutoff)
+    evaluation = evaluate(records, model, cutoff=cutoff, window=window)
+    cut = cutoff if cutoff is not None else records.cutoff
+    _, cut, win = resolve_analysis(model.spec, model.horizon_days, cut, window)
+    cohort = build_cohort(records, model.outcome, model.horizon_days, cut, win)
+    X, strata = model.matrices(cohort)
+    arrays = ProgramArrays.build(
+        cohort.frame["time"].to_numpy(float), X, strata,
+        cohort.frame[model.spec.columns.program].astype(str),
+    )  # fmt: skip
+    ids = cohort.frame[model.spec.columns.recipient].astype(str).to_numpy()
+    if not np.array_equal(ids, evaluation.recipients["recipient"].astype(str).to_numpy()):
+        raise InputError("the cohort rows do not line up with the evaluation; run it again")
+    return evaluation, arrays
+
+
+def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
+    used = programs[programs["expected"] > 0]
+    if len(used) < MIN_PROGRAMS:
+        return {}  # too few programs to estimate a spread (said in the facts' notes)
+    result = overdispersion(used["observed"], used["expected"])
+    summary = pd.DataFrame(
+        [
+            {
+                "programs": len(used),
+                "phi": result.phi,
+                "statistic": result.statistic,
+                "df": result.df,
+                "p_value": result.p_value,
+                "tau2": result.tau2,
+                "z_low": result.limits[0],
+                "z_high": result.limits[1],
+            }
+        ]
+    )
+    per = used[["program", "observed", "expected", "oe_ratio"]].assign(
+        z=result.z, z_winsorised=result.z_winsorised
+    )
+    for method in ("multiplicative", "additive"):
+        for level, tag in ((0.95, "95"), (0.998, "998")):
+            low, high = adjusted_funnel_limits(used["expected"], result, level=level, method=method)
+            per[f"{method}_lower_{tag}"], per[f"{method}_upper_{tag}"] = low, high
+    return {"overdispersion": summary, "dispersion_programs": per.reset_index(drop=True)}
+
+
+def _cohort_calibration(evaluation, model, arrays) -> dict[str, pd.DataFrame]:
+    rec = evaluation.recipients
+    event, e, lp = rec["event"].to_numpy(), rec["expected"].to_numpy(), rec["lp"].to_numpy()
+    horizons = [h for h in HORIZONS if h < model.horizon_days] + [model.horizon_days]
+    horizons = [h for h in horizons if h <= arrays.time.max()]
+    X = arrays.X
+    return {
+        "calibration_risk": calibration_by_risk(event, e, lp).assign(population="cohort"),
+        "calibration_regression": calibration_regression(event, e, lp)
+        .reset_index()
+        .assign(population="cohort"),
+        "calibration_horizon": calibration_by_horizon(
+            model.fit, arrays.time, event, X, horizons, strata=arrays.strata
+        ).assign(population="cohort"),
+        "concordance": pd.DataFrame(
+            [{"population": "cohort", **asdict(concordance(arrays.time, event, lp))}]
+        ),
+    }
+
+
+def _program_checks(model, data, evaluation, arrays, options) -> tuple[dict, dict]:
+    programs = evaluation.programs.set_index("program").loc[list(arrays.programs)].reset_index()
+    observed = programs["observed"].to_numpy()
+    tables = _dispersion(programs)
+    notes = []
+    if len(programs) >= MIN_PROGRAMS:
+        tables["calibration_size"] = calibration_by_size(programs)
+    else:
+        notes.append(
+            f"size groups and overdispersion need at least {MIN_PROGRAMS} programs with "
+            f"expected events; the cohort has {len(programs)}"
+        )
+    long, prior_notes = prior_sensitivity(programs, evaluation.prior, evaluation.rules)
+    tables["prior_sensitivity"], tables["prior_verdicts"] = long, verdict_changes(long)
+    boot = bootstrap_expected(
+        data, model.fit, arrays, observed, evaluation.prior,
+        replicates=options["bootstrap"], seed=options["seed"],
+        level=evaluation.rules.credible_level, map_fn=options["map_fn"],
+        progress=options["progress"],
+    )  # fmt: skip
+    delta = delta_expected(model.fit, arrays, level=evaluation.rules.credible_level)
+    tables["bootstrap"] = boot.programs.merge(
+        delta.drop(columns="expected"), on="program", validate="one_to_one"
+    )
+    tables["bootstrap_coefficients"] = boot.coefficients
+    reference_program = data.cohort.frame[model.spec.columns.program].astype(str).to_numpy()
+    tables["influence"] = leave_one_program_out(
+        data, model.fit, reference_program, arrays, observed, map_fn=options["map_fn"]
+    )
+    fdr = fdr_table(programs["program"], observed, programs["expected"])
+    tables["fdr"] = fdr.merge(programs[["program", "verdict"]], on="program")
+    facts = {"bootstrap_failed": boot.failed, "prior_notes": prior_notes, "notes": notes}
+    return tables, facts
+
+
+def _merge(tables: dict, extra: dict) -> dict:
+    """Append the cohort rows of tables the reference already has; add the new ones."""
+    out = dict(tables)
+    for name, table in extra.items():
+        out[name] = pd.concat([out[name], table], ignore_index=True) if name in out else table
+    return out
+
+
+def run_audit(
+    reference_records,
+    model,
+    cohort_records=None,
+    *,
+    bootstrap: int = 200,
+    seed: int = 0,
+    map_fn: Callable | None = None,
+    progress: bool = False,
+    cutoff=None,
+    window=None,
+) -> Audit:
+    """Run every check of the audit.
+
+    Parameters
+    ----------
+    reference_records : Records or path
+        The reference extract the model was fitted on (a path is read with the model's spec
+        and cut-off).
+    model : ReferenceModel or path
+    cohort_records : Records or path, optional
+        An evaluation cohort: adds the per-program checks.
+    bootstrap : int, default 200
+        Bootstrap replicates of the reference fit (with a cohort only).
+    seed : int, default 0
+        Seed of the bootstrap; the same seed gives the same tables.
+    map_fn : callable, optional
+        ``map_fn(func, items)`` used for the refits (default: a 2-process pool).
+    progress : bool, default False
+        Show a progress bar on a terminal.
+    cutoff, window : optional
+        The cohort's cut-off and transplant-date window, as for :func:`casemix.evaluate`.
+
+    Returns
+    -------
+    Audit
+    """
+    model, data = _load(model, reference_records)
+    reference_programs = ProgramArrays.build(
+        data.time, data.X, data.strata,
+        data.cohort.frame[model.spec.columns.program].astype(str),
+    )  # fmt: skip
+    transforms, notes = _transforms(data)
+    tables = _model_checks(model, data, reference_programs, transforms)
+    facts: dict[str, Any] = {
+        "model_fingerprint": model.fingerprint,
+        "outcome": model.outcome,
+        "horizon_days": model.horizon_days,
+        "reference_recipients": int(data.time.size),
+        "reference_events": int(data.event.sum()),
+        "ties": model.fit.ties,
+        "transforms": transforms,
+        "notes": notes,
+        "findings_transform": "rank",
+        "thresholds": THRESHOLDS,
+        "seed": int(seed),
+        "bootstrap": 0,
+    }
+    if cohort_records is not None:
+        evaluation, arrays = _evaluation(cohort_records, model, cutoff, window)
+        options = {"bootstrap": bootstrap, "seed": seed, "map_fn": map_fn, "progress": progress}
+        program_tables, program_facts = _program_checks(model, data, evaluation, arrays, options)
+        tables = _merge(tables, _cohort_calibration(evaluation, model, arrays))
+        tables = _merge(tables, program_tables)
+        facts["notes"] = facts["notes"] + program_facts.pop("notes")
+        facts.update(program_facts, bootstrap=int(bootstrap), cohort_recipients=len(arrays.time))
+    schoenfeld = schoenfeld_residuals(model.fit, data.time, data.event, data.X, strata=data.strata)
+    findings = tuple(all_findings(tables, facts))
+    return Audit(tables=tables, schoenfeld=schoenfeld, findings=findings, facts=facts)

@@ -1,0 +1,99 @@
+"""run_audit end to end on a slice of the invented demo network (known truth: LV05 has an
+excess and LV04 fewer events than expected, see casemix.demo)."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import numpy as np
+import pytest
+
+from casemix.audit import run_audit
+from casemix.demo import (
+    COHORT_CUTOFF,
+    REFERENCE_CUTOFF,
+    REFERENCE_WINDOW,
+    generate,
+)
+from casemix.errors import InputError
+from casemix.records import read_records
+from casemix.reference import fit_reference
+from casemix.spec import load_spec
+
+
+@pytest.fixture(scope="module")
+def demo(tmp_path_factory):
+    folder = tmp_path_factory.mktemp("demo")
+    network = generate()
+    (folder / "spec.toml").write_text(network.spec_text, encoding="utf-8")
+    # every third reference recipient keeps the test fast; the whole cohort
+    network.reference.iloc[::3].to_csv(folder / "reference.csv", index=False)
+    network.cohort.to_csv(folder / "cohort.csv", index=False)
+    spec = load_spec(folder / "spec.toml")
+    with warnings.catch_warnings():
+        # the demo plants broken records on purpose; their DataWarnings are not under test
+        warnings.simplefilter("ignore")
+        reference = read_records(folder / "reference.csv", spec, cutoff=REFERENCE_CUTOFF)
+        cohort = read_records(folder / "cohort.csv", spec, cutoff=COHORT_CUTOFF)
+        model = fit_reference(reference, spec, cutoff=REFERENCE_CUTOFF, window=REFERENCE_WINDOW)
+        audit = run_audit(reference, model, cohort, bootstrap=8, seed=4, map_fn=map)
+    return {"reference": reference, "cohort": cohort, "model": model, "audit": audit,
+            "folder": folder, "truth": network.truth}  # fmt: skip
+
+
+def test_tables_and_findings(demo):
+    audit = demo["audit"]
+    expected = {
+        "ph", "concordance", "calibration_risk", "calibration_regression",
+        "calibration_horizon", "crosscheck", "coefficients", "calibration_size",
+        "overdispersion", "dispersion_programs", "prior_sensitivity", "prior_verdicts",
+        "bootstrap", "bootstrap_coefficients", "influence", "fdr",
+    }  # fmt: skip
+    assert set(audit.tables) == expected
+    assert sorted(audit.tables["concordance"]["population"]) == ["cohort", "reference"]
+    # REFERENCE LIBRARY statsmodels PHReg and lifelines agree with the fit (tolerances of
+    # REFERENCE_CHECKS.md: coef abs 1e-4, loglik abs 1e-6, E rel 1e-5)
+    cross = audit.tables["crosscheck"].set_index(["library", "quantity"])
+    assert cross.loc[("statsmodels", "coef"), "max_abs_difference"] < 1e-4
+    assert cross.loc[("statsmodels", "loglik"), "max_abs_difference"] < 1e-6
+    assert cross.loc[("lifelines", "expected"), "max_rel_difference"] < 1e-4
+    assert any("agrees with statsmodels on coef" in f for f in audit.findings)
+    # known truth of the invented network: LV05's true HR is the highest, LV04's the lowest
+    truth = demo["truth"].set_index("program")["true_hr"]
+    fdr = audit.tables["fdr"].set_index("program")
+    assert fdr.loc[truth.idxmax(), "q_more"] < 0.05
+    assert audit.tables["bootstrap"]["width_ratio"].between(0.8, 2.0).all()
+    assert audit.facts["bootstrap"] == 8 and audit.facts["bootstrap_failed"] == 0
+
+
+def test_same_seed_same_tables(demo):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        again = run_audit(demo["reference"], demo["model"], demo["cohort"], bootstrap=8,
+                          seed=4, map_fn=map)  # fmt: skip
+    for name, table in demo["audit"].tables.items():
+        assert table.equals(again.tables[name]), name
+    assert again.findings == demo["audit"].findings
+
+
+def test_save_writes_the_folder(demo, tmp_path):
+    out = demo["audit"].save(tmp_path / "audit")
+    names = sorted(p.name for p in out.iterdir())
+    assert "audit.html" in names and "findings.json" in names and "ph.csv" in names
+    assert json.loads((out / "findings.json").read_text()) == list(demo["audit"].findings)
+    html = (out / "audit.html").read_text()
+    assert "Statistical audit" in html and "<svg" in html and "Proportional hazards" in html
+
+
+def test_without_cohort_only_model_checks(demo):
+    audit = run_audit(demo["reference"], demo["model"])
+    assert "bootstrap" not in audit.tables and "ph" in audit.tables
+    assert np.isclose(
+        audit.tables["concordance"]["c"].iloc[0], demo["model"].concordance, atol=1e-12
+    )
+
+
+def test_refuses_records_that_are_not_the_fitting_data(demo):
+    with pytest.raises(InputError, match="are not the data the model was fitted on"):
+        run_audit(demo["cohort"], demo["model"])
