@@ -129,10 +129,9 @@ def _prior(value: str, observed=None, expected=None):
     if value.startswith("fixed:"):
         try:
             shape, rate = (float(part) for part in value[len("fixed:") :].split(","))
-        except ValueError:
-            pass
-        else:
             return fixed_prior(shape, rate)
+        except (ValueError, CasemixError):
+            pass
     err.print(
         f"error: --prior {value!r} is not understood; use eb, eb-free or fixed:SHAPE,RATE "
         "(e.g. fixed:2,2)",

@@ -55,7 +55,7 @@ def expected_events(cohort: Cohort, model: ReferenceModel) -> ExpectedEvents:
         )
     if cohort.horizon_days > model.horizon_days:
         raise InputError(
-            f"the cohort's horizon ({cohort.horizon_days} days) is longer than the reference "
+            f"the cohort's horizon ({cohort.horizon_days:g} days) is longer than the reference "
             f"model's ({model.horizon_days} days): the baseline hazard is unknown past it; "
             "fit a reference model with a longer horizon"
         )
@@ -91,9 +91,10 @@ def _out_of_range(model: ReferenceModel, frame: pd.DataFrame, programs: pd.Serie
     counts = flags.groupby(level=0, sort=True).sum().stack()
     table = counts[counts > 0].rename("recipients").rename_axis(["program", "covariate"])
     table = table.reset_index()
+    n_outside = int(flags.any(axis=1).sum())
     warnings.warn(
-        f"{plural(int(flags.any(axis=1).sum()), 'recipient')} have covariate values outside the "
-        "range seen in the reference population (by program and covariate: "
+        f"{plural(n_outside, 'recipient')} {'has' if n_outside == 1 else 'have'} covariate "
+        "values outside the range seen in the reference population (by program and covariate: "
         + ", ".join(f"{r.program} {r.covariate} {r.recipients}" for r in table.head(8).itertuples())
         + ("; ..." if len(table) > 8 else "")
         + "); their expected events extrapolate the model",

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import ROSSI_FULL
+from audit_helpers import ROSSI_FULL
 from scipy import optimize, stats
 
 from casemix.audit import (

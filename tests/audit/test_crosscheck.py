@@ -6,7 +6,7 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
-from conftest import ROSSI_FULL
+from audit_helpers import ROSSI_FULL
 
 from casemix.audit import ProgramArrays, crosscheck_lifelines, crosscheck_statsmodels
 from casemix.survival import fit_cox

@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pandas as pd
-from conftest import ROSSI_FULL
+from audit_helpers import ROSSI_FULL
 from scipy import stats
 
 from casemix.audit import overdispersion, ph_test

@@ -6,7 +6,7 @@ from types import SimpleNamespace
 
 import numpy as np
 import pytest
-from conftest import step_expected
+from audit_helpers import step_expected
 from lifelines import CoxPHFitter
 
 from casemix.audit import ProgramArrays, leave_one_program_out

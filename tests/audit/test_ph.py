@@ -7,7 +7,7 @@ from dataclasses import replace
 import numpy as np
 import pandas as pd
 import pytest
-from conftest import ROSSI_FULL, ROSSI_SMALL
+from audit_helpers import ROSSI_FULL, ROSSI_SMALL
 from lifelines import CoxPHFitter
 from lifelines.statistics import proportional_hazard_test
 from statsmodels.duration.hazard_regression import PHReg, PHRegResults

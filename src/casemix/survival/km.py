@@ -41,7 +41,11 @@ class KaplanMeier:
     level: float
 
     def at(self, t) -> np.ndarray:
-        """Return S at each time in ``t``: 1 before the first time, NaN past the last one."""
+        """Return S at each time in ``t``: 1 before the first time, NaN past the last one.
+
+        Past the last observed time the curve is unknown, except when it has reached 0 (then it
+        stays 0).
+        """
         return self._step(self.survival, t, before=1.0)
 
     def lower_at(self, t) -> np.ndarray:
@@ -63,7 +67,8 @@ class KaplanMeier:
         t = np.atleast_1d(np.asarray(t, dtype=float))
         idx = np.searchsorted(self.times, t, side="right") - 1
         out = np.where(idx >= 0, values[np.clip(idx, 0, None)], before)
-        return np.where(t > self.times[-1], np.nan, out)
+        unknown = (t > self.times[-1]) & (self.survival[-1] > 0)
+        return np.where(unknown, np.nan, out)
 
 
 def kaplan_meier(time, event, weights=None, level: float = 0.95) -> KaplanMeier:

@@ -1,0 +1,297 @@
+"""From validated records to follow-up: ``time`` (days) and ``event`` (0/1) per recipient.
+
+For a recipient transplanted on day ``T`` (all dates are whole days):
+
+* event date ``D`` = the earliest of the outcome's date columns (none if all are empty);
+* potential follow-up end ``P`` = min(cut-off, ``T`` + horizon);
+* last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later (records already
+  do this and count it);
+* ``event`` = 1 if ``D`` exists and ``D <= P`` (an event on the day of the transplant, on the
+  horizon day or on the cut-off day counts), else 0;
+* ``time`` = ``D - T`` if ``event`` else ``min(L, P) - T``, in days (float); never negative,
+  never past the horizon or the cut-off.
+
+Per program, the follow-up completeness index (Clark, Altman & De Stavola, 2002) is
+``sum(observed) / sum(potential)`` where observed = ``time`` and potential = ``D - T`` for an
+event and ``P - T`` otherwise; it is NaN when the potential follow-up is zero (everyone
+transplanted on the cut-off day). A recipient is **lost to follow-up** when, without an event,
+``P - L`` is more than ``lost_after_days`` (default 365) days: last seen more than a year
+before the end of the follow-up that could have been observed. With a horizon of 365 days or
+less nobody can be lost under the default.
+
+Plain pandas/numpy arithmetic on datetime64 columns; nothing is hand-written beyond that.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+
+from casemix.errors import InputError
+from casemix.records import Records, to_timestamp
+
+__all__ = ["Cohort", "build_cohort", "follow_up"]
+
+_DAY = pd.Timedelta(days=1)
+
+
+@dataclass(frozen=True)
+class Cohort:
+    """Recipients with their follow-up for one outcome, horizon and cut-off.
+
+    Attributes
+    ----------
+    frame : pandas.DataFrame
+        The kept record columns plus ``time`` (float days) and ``event`` (int 0/1); index =
+        0-based row of the records file.
+    exclusions : pandas.DataFrame
+        ``row``, ``recipient``, ``reason``, ``program``: the records' exclusions plus
+        recipients outside the cut-off or the transplant-date window, sorted by row.
+    followup : pandas.DataFrame
+        One row per program (sorted): ``program``, ``recipients``, ``completeness``,
+        ``lost_to_followup``, ``observed_days``, ``potential_days``.
+    outcome : str
+    horizon_days : float
+    cutoff : pandas.Timestamp
+    window : tuple of (pandas.Timestamp or None)
+        Inclusive transplant-date window ``(from, to)``.
+    n_read : int
+        Records read from the file; ``n_read == len(frame) + len(exclusions)``.
+    lost_after_days : float
+        The lost-to-follow-up threshold used.
+    """
+
+    frame: pd.DataFrame
+    exclusions: pd.DataFrame
+    followup: pd.DataFrame
+    outcome: str
+    horizon_days: float
+    cutoff: pd.Timestamp
+    window: tuple[pd.Timestamp | None, pd.Timestamp | None]
+    n_read: int
+    lost_after_days: float = 365.0
+
+
+def follow_up(
+    transplant: pd.Series,
+    last_seen: pd.Series,
+    event_date: pd.Series,
+    cutoff: pd.Timestamp,
+    horizon_days: float,
+) -> pd.DataFrame:
+    """Follow-up arithmetic for aligned datetime64 Series (rules in the module docstring).
+
+    Parameters
+    ----------
+    transplant, last_seen : pandas.Series of datetime64, shape (n,)
+        No missing values; ``transplant <= cutoff``.
+    event_date : pandas.Series of datetime64, shape (n,)
+        ``NaT`` where there is no event.
+    cutoff : pandas.Timestamp
+    horizon_days : float
+
+    Returns
+    -------
+    pandas.DataFrame
+        Same index; float columns ``time``, ``potential``, ``last_seen_days`` (days from the
+        transplant to the extended last-seen date) and int column ``event``.
+    """
+    ev = ((event_date - transplant) / _DAY).to_numpy(dtype=float)
+    seen = ((last_seen - transplant) / _DAY).to_numpy(dtype=float)
+    seen = np.fmax(seen, ev)  # follow-up reaches any recorded event (fmax ignores NaN)
+    window = np.minimum(float(horizon_days), ((cutoff - transplant) / _DAY).to_numpy(float))
+    event = ev <= window  # False where there is no event (NaN compares False)
+    time = np.where(event, ev, np.minimum(seen, window))
+    return pd.DataFrame(
+        {
+            "time": time,
+            "event": event.astype(np.int64),
+            "potential": np.where(event, ev, window),
+            "last_seen_days": seen,
+        },
+        index=transplant.index,
+    )
+
+
+def build_cohort(
+    records: Records,
+    outcome: str,
+    horizon_days: float | None = None,
+    cutoff: object = None,
+    window: tuple[object, object] | None = None,
+    *,
+    lost_after_days: float = 365.0,
+) -> Cohort:
+    """Give every kept recipient its follow-up ``time`` and ``event`` for one outcome.
+
+    Parameters
+    ----------
+    records : Records
+    outcome : str
+        Name of an ``[outcomes.NAME]`` table of the spec.
+    horizon_days : float, optional
+        Follow-up that counts, in days. Default: the spec's ``analysis.horizon_days``.
+    cutoff : date-like, optional
+        Data cut-off (inclusive). Default: the cut-off the records were read with. It may
+        not be later than that one, because last-seen dates were truncated to it.
+    window : (date-like or None, date-like or None), optional
+        Inclusive transplant-date window; ``None`` keeps every transplant (the spec's
+        ``cohort_from``/``cohort_to`` apply only when passed, e.g.
+        ``window=spec.analysis.window``).
+    lost_after_days : float, default 365
+        A recipient without an event last seen more than this many days before the end of
+        the potential follow-up counts as lost to follow-up.
+
+    Returns
+    -------
+    Cohort
+
+    Raises
+    ------
+    SpecError
+        Unknown outcome.
+    InputError
+        No horizon or cut-off, a cut-off after the records' cut-off, a bad window.
+    """
+    spec = records.spec
+    dates = spec.outcome(outcome).dates
+    horizon = _horizon(horizon_days, spec.analysis.horizon_days)
+    stamp = _cutoff(cutoff, records)
+    start, end = _window(window)
+    frame = records.frame
+    for name in ("time", "event"):
+        if name in frame.columns:
+            raise InputError(
+                f"records file '{records.source}' has a column '{name}', which the cohort "
+                "adds; rename that column in the file."
+            )
+    tx = frame[spec.columns.transplant_date]
+    reasons = _window_reasons(tx, stamp, start, end)
+    out = frame.loc[reasons.isna()].copy()
+    fu = follow_up(
+        out[spec.columns.transplant_date],
+        out[spec.columns.last_seen],
+        out[list(dates)].min(axis=1),
+        stamp,
+        horizon,
+    )
+    out["time"] = fu["time"]
+    out["event"] = fu["event"]
+    return Cohort(
+        frame=out,
+        exclusions=_exclusions(records, reasons),
+        followup=_followup(out[spec.columns.program], fu, lost_after_days),
+        outcome=outcome,
+        horizon_days=horizon,
+        cutoff=stamp,
+        window=(start, end),
+        n_read=records.n_read,
+        lost_after_days=float(lost_after_days),
+    )
+
+
+def _horizon(value: float | None, default: int | None) -> float:
+    value = default if value is None else value
+    if value is None:
+        raise InputError(
+            "no follow-up horizon: pass horizon_days or set analysis.horizon_days in the spec."
+        )
+    if isinstance(value, bool) or not np.isfinite(value) or value <= 0:
+        raise InputError(f"horizon_days must be a positive number of days, not {value!r}.")
+    return float(value)
+
+
+def _cutoff(value: object, records: Records) -> pd.Timestamp:
+    stamp = to_timestamp(value, "cut-off")
+    if stamp is None:
+        stamp = records.cutoff
+    if stamp is None:
+        raise InputError(
+            "no cut-off: pass cutoff, set analysis.cutoff in the spec, or read the records "
+            "with read_records(..., cutoff=...)."
+        )
+    if records.cutoff is not None and stamp > records.cutoff:
+        raise InputError(
+            f"cut-off {stamp:%Y-%m-%d} is after {records.cutoff:%Y-%m-%d}, the cut-off the "
+            f"records '{records.source}' were read with (last-seen dates were truncated to "
+            "it); read the records again with the later cut-off."
+        )
+    return stamp
+
+
+def _window(window: tuple[object, object] | None) -> tuple[pd.Timestamp | None, ...]:
+    if window is None:
+        return (None, None)
+    if len(window) != 2:
+        raise InputError(
+            f"window must be (from_date, to_date), either may be None; got {window!r}."
+        )
+    start = to_timestamp(window[0], "window start")
+    end = to_timestamp(window[1], "window end")
+    if start is not None and end is not None and start > end:
+        raise InputError(
+            f"window start {start:%Y-%m-%d} is after window end {end:%Y-%m-%d}; swap them."
+        )
+    return (start, end)
+
+
+def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp, start: pd.Timestamp | None,
+                    end: pd.Timestamp | None) -> pd.Series:
+    """Reason text for recipients outside the cut-off or window (missing for the others)."""
+    day = tx.dt.strftime("%Y-%m-%d")
+    reasons = pd.Series(None, index=tx.index, dtype=object)
+    checks = [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}")]
+    if end is not None:
+        checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})"))
+    if start is not None:
+        checks.append((tx < start, f", before the cohort window (from {start:%Y-%m-%d})"))
+    for mask, text in checks:
+        mask = mask & reasons.isna()
+        reasons[mask] = ("transplanted " + day[mask] + text).to_numpy(dtype=object)
+    return reasons
+
+
+def _exclusions(records: Records, reasons: pd.Series) -> pd.DataFrame:
+    hit = reasons.notna()
+    new = pd.DataFrame(
+        {
+            "row": (reasons.index[hit] + 1).astype(np.int64),
+            "recipient": records.frame.loc[hit, records.spec.columns.recipient].to_numpy(),
+            "reason": reasons[hit].to_numpy(dtype=object),
+            "program": records.frame.loc[hit, records.spec.columns.program].to_numpy(),
+        }
+    )
+    parts = [p for p in (records.exclusions, new) if len(p)]
+    if not parts:
+        return records.exclusions.copy()
+    combined = pd.concat(parts, ignore_index=True)
+    return combined.sort_values("row", kind="stable", ignore_index=True)
+
+
+def _followup(program: pd.Series, fu: pd.DataFrame, lost_after_days: float) -> pd.DataFrame:
+    lost = (fu["event"] == 0) & (fu["potential"] - fu["last_seen_days"] > lost_after_days)
+    parts = pd.DataFrame(
+        {
+            "program": program.to_numpy(dtype=object),
+            "observed_days": fu["time"].to_numpy(),
+            "potential_days": fu["potential"].to_numpy(),
+            "lost_to_followup": lost.to_numpy(dtype=np.int64),
+        }
+    )
+    table = parts.groupby("program", sort=True).agg(
+        recipients=("observed_days", "size"),
+        observed_days=("observed_days", "sum"),
+        potential_days=("potential_days", "sum"),
+        lost_to_followup=("lost_to_followup", "sum"),
+    )
+    potential = table["potential_days"].to_numpy(dtype=float)
+    observed = table["observed_days"].to_numpy(dtype=float)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        completeness = np.where(potential > 0, observed / potential, np.nan)
+    table["completeness"] = completeness
+    table = table.reset_index()
+    columns = ["program", "recipients", "completeness", "lost_to_followup",
+               "observed_days", "potential_days"]
+    return table[columns].astype({"recipients": np.int64, "lost_to_followup": np.int64})

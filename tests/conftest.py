@@ -1,0 +1,22 @@
+"""Fixtures shared across the test folders: the rossi data shipped in lifelines.datasets."""
+
+from __future__ import annotations
+
+import pytest
+from lifelines.datasets import load_rossi
+
+from casemix.survival import fit_cox
+
+ROSSI_FULL = ("fin", "age", "race", "wexp", "mar", "paro", "prio")
+
+
+@pytest.fixture(scope="session")
+def rossi():
+    return load_rossi()
+
+
+@pytest.fixture(scope="session")
+def rossi_fit(rossi):
+    """Efron fit of the full model (REFERENCE_CHECKS.md section 3.1)."""
+    names = list(ROSSI_FULL)
+    return fit_cox(rossi["week"], rossi["arrest"], rossi[names].to_numpy(float), names=names)

@@ -1,0 +1,523 @@
+"""Tests of the ``casemix`` command line, run in-process with typer's CliRunner.
+
+The command line computes nothing itself, so most tests check behaviour: exit codes (0
+success, 1 bad input, 2 usage), the files written, and that bad input gives a message naming
+the file, column or rows and the fix, never a traceback. Expected counts come from the demo
+generator's own record of what it planted (``casemix.demo.generate().planted``: a simulation
+with a known truth), the demo's hazard ratios are checked against the generator's true ones,
+and the posterior of a fixed prior against scipy.stats.gamma.
+"""
+
+from __future__ import annotations
+
+import importlib.metadata
+import json
+import re
+import shutil
+import traceback
+from html.parser import HTMLParser
+from pathlib import Path
+
+import pandas as pd
+import pytest
+from scipy import stats
+from typer.testing import CliRunner, Result
+
+from casemix import demo
+from casemix.cli import app
+
+# Wide enough that rich does not wrap the count tables (the parser below copes if it does).
+runner = CliRunner(env={"COLUMNS": "200", "NO_COLOR": "1"})
+PROGRAMS = [f"LV{i:02d}" for i in range(1, 17)]
+DEMO_FILES = [
+    "reference.csv", "cohort.csv", "spec.toml", "rules.toml", "model.json",
+    "programs.csv", "recipients.csv", "exclusions.csv", "run.json", "report.html",
+]
+EVALUATION_FILES = ["programs.csv", "recipients.csv", "exclusions.csv", "run.json"]
+COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit"]
+REFERENCE_CUTOFF, COHORT_CUTOFF = "2022-12-31", "2025-06-30"
+
+
+def invoke(*args: object) -> Result:
+    return runner.invoke(app, [str(a) for a in args])
+
+
+def _uncaught(result: Result) -> str:
+    """The traceback of an exception that escaped the command (empty when none did)."""
+    exc = result.exception
+    if exc is None or isinstance(exc, SystemExit):
+        return ""
+    return "".join(traceback.format_exception(type(exc), exc, exc.__traceback__))
+
+
+def assert_exit(result: Result, code: int, *patterns: str) -> None:
+    """Exit code as given, no traceback for the user, and every pattern in the output."""
+    escaped = _uncaught(result)
+    assert not escaped, f"an exception reached the user:\n{escaped}"
+    assert "Traceback" not in result.output
+    assert result.exit_code == code, result.output
+    for pattern in patterns:
+        assert re.search(pattern, result.output), f"{pattern!r} not in:\n{result.output}"
+
+
+def count_table(text: str, title: str) -> dict[str, int]:
+    """The rows of a two-column count table printed under ``title``: key -> count."""
+    lines = text.splitlines()
+    start = next(i for i, line in enumerate(lines) if line.strip() == title)
+    rows: list[list[str]] = []
+    for line in lines[start + 1 :]:
+        stripped = line.strip()
+        if stripped[:1] in ("└", "+") or not stripped:
+            break
+        if stripped[:1] not in ("│", "|"):
+            continue  # top border, header rule
+        cells = [cell.strip() for cell in re.split(r"[│|]", stripped)[1:-1]]
+        if rows and not cells[-1]:  # a wrapped cell continues the row above
+            rows[-1][0] += " " + cells[0]
+        else:
+            rows.append(cells)
+    return {key: int(count) for key, count in rows if count.isdigit()}
+
+
+class _Rows(HTMLParser):
+    """The text of every table row of an HTML page, one list of cell texts per row."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.rows: list[list[str]] = []
+        self._cell: list[str] | None = None
+
+    def handle_starttag(self, tag, attrs):
+        if tag == "tr":
+            self.rows.append([])
+        elif tag in ("td", "th"):
+            self._cell = []
+
+    def handle_endtag(self, tag):
+        if tag in ("td", "th") and self._cell is not None and self.rows:
+            self.rows[-1].append("".join(self._cell).strip())
+            self._cell = None
+
+    def handle_data(self, data):
+        if self._cell is not None:
+            self._cell.append(data)
+
+
+def html_rows(path: Path) -> list[list[str]]:
+    parser = _Rows()
+    parser.feed(path.read_text(encoding="utf-8"))
+    return parser.rows
+
+
+@pytest.fixture(scope="module")
+def network() -> demo.DemoNetwork:
+    return demo.generate()  # the same default seed as `casemix demo`
+
+
+@pytest.fixture(scope="module")
+def demo_run(tmp_path_factory) -> tuple[Path, Result]:
+    folder = tmp_path_factory.mktemp("cli") / "demo_out"
+    return folder, invoke("demo", "--out", folder)
+
+
+@pytest.fixture(scope="module")
+def demo_dir(demo_run) -> Path:
+    folder, result = demo_run
+    assert_exit(result, 0)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def evaluation_dir(demo_dir, tmp_path_factory) -> Path:
+    out = tmp_path_factory.mktemp("cli") / "results"
+    result = invoke(
+        "evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+        "--rules", demo_dir / "rules.toml", "--cutoff", COHORT_CUTOFF, "--no-report",
+        "--out", out,
+    )
+    assert_exit(result, 0)
+    return out
+
+
+def _extract(demo_dir: Path, folder: Path, name: str, edit=None, rows: int = 120) -> Path:
+    """The first ``rows`` records of the demo cohort (none of them planted), optionally edited."""
+    frame = pd.read_csv(demo_dir / "cohort.csv", dtype=str, keep_default_na=False).head(rows)
+    if edit is not None:
+        frame = edit(frame)
+    path = folder / name
+    frame.to_csv(path, index=False, lineterminator="\n")
+    return path
+
+
+# --- demo -------------------------------------------------------------------------------
+
+
+def test_demo_writes_every_file_into_one_flat_folder(demo_dir, demo_run):
+    for name in DEMO_FILES:
+        assert (demo_dir / name).is_file(), name
+    assert not [p for p in demo_dir.iterdir() if p.is_dir()]
+    output = demo_run[1].output
+    for code in PROGRAMS:
+        assert code in output
+    assert f"report: {demo_dir / 'report.html'}" in output
+    assert "not a finding about quality of care" in output
+    # not a terminal: the progress bar stays quiet
+    assert "fitting the reference model" not in output
+
+
+def test_demo_recovers_the_true_hazard_ratios(demo_dir, network):
+    programs = pd.read_csv(demo_dir / "programs.csv").merge(network.truth, on="program")
+    assert sorted(programs["program"]) == PROGRAMS
+    inside = programs["hr_lower"].le(programs["true_hr"]) & programs["true_hr"].le(
+        programs["hr_upper"]
+    )
+    # Rule: at least 13 of the 16 true hazard ratios inside their 95% credible intervals.
+    # Were the intervals exact, P(12 or fewer inside) = binom.cdf(12, 16, 0.95) = 0.007
+    # (scipy.stats.binom), so 13 is a fair bar for one fixed seed.
+    assert stats.binom.cdf(12, 16, 0.95) < 0.01
+    assert inside.sum() >= 13, programs.loc[~inside, ["program", "true_hr", "hr_lower",
+                                                       "hr_upper"]]
+
+
+def test_demo_tells_the_stories_it_was_built_with(demo_dir):
+    programs = pd.read_csv(demo_dir / "programs.csv").set_index("program")
+    # Generator truth (casemix.demo): LV03 poor raw survival explained by case mix (HR 1.0),
+    # LV04 clearly favorable (HR 0.6), LV05 easy case mix hiding an excess (HR 1.6).
+    assert programs["observed_survival"].idxmin() == "LV03"
+    assert programs.loc["LV03", "verdict"] == "consistent"
+    assert programs.loc["LV04", "verdict"] == "favorable"
+    assert programs.loc["LV05", "verdict"] == "excess"
+
+
+def test_demo_into_an_existing_file_is_a_usage_error(tmp_path):
+    target = tmp_path / "taken"
+    target.write_text("not a folder\n")
+    assert_exit(invoke("demo", "--out", target), 2, "taken")
+
+
+# --- check ------------------------------------------------------------------------------
+
+
+def test_check_a_usable_extract_counts_exclusions_per_reason_and_program(demo_dir, network):
+    result = invoke("check", demo_dir / "cohort.csv", "--spec", demo_dir / "spec.toml",
+                    "--cutoff", COHORT_CUTOFF)
+    assert_exit(result, 0, "The extract is usable")
+    planted = network.planted[network.planted["role"] == "cohort"]
+    excluded = planted[planted["handling"] == "excluded"]
+    n_read = len(network.cohort)
+    assert f"{n_read} records read, {n_read - len(excluded)} kept, {len(excluded)} excluded" in (
+        result.output
+    )
+    by_reason = count_table(result.output, "Excluded, by reason")
+    assert sum(by_reason.values()) == len(excluded)  # each planted record breaks one rule
+    for words in ("before the transplant date", "after the cut-off", "is missing",
+                  "outside the plausible range"):
+        assert any(words in reason for reason in by_reason), words
+    # the generator's record of which program each excluded recipient belongs to
+    programs = network.cohort.set_index("recipient_id").loc[excluded["recipient_id"], "program"]
+    expected = programs.fillna("(missing)").value_counts().to_dict()
+    assert count_table(result.output, "Excluded, by program") == expected
+
+
+def test_check_reports_a_missing_column_with_the_file_and_a_fix(demo_dir, tmp_path):
+    path = _extract(demo_dir, tmp_path, "no_donor_age.csv",
+                    lambda f: f.drop(columns="donor_age"))
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 1, "no_donor_age.csv", "'donor_age'", "(?i)rename|closest")
+
+
+def test_check_refuses_duplicate_recipient_ids(demo_dir, tmp_path):
+    def duplicate(frame):
+        return pd.concat([frame, frame.iloc[[5]]], ignore_index=True)
+
+    path = _extract(demo_dir, tmp_path, "twice.csv", duplicate)
+    twice = pd.read_csv(path, dtype=str)["recipient_id"].iloc[5]
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 1, "twice.csv", "recipient_id", twice, "more than once")
+
+
+@pytest.mark.parametrize(
+    ("name", "content", "pattern"),
+    [
+        ("latin1.csv", "recipient_id,program\nR1,Ch\xe2teau\n".encode("latin-1"), "UTF-8"),
+        ("broken.parquet", b"PAR1 this is not parquet", "cannot be read"),
+        ("nothing.csv", b"", "empty"),
+        ("header_only.csv", None, "no data rows"),
+    ],
+    ids=["not-utf8", "corrupt-parquet", "zero-bytes", "header-only"],
+)
+def test_check_refuses_unreadable_and_empty_files(demo_dir, tmp_path, name, content, pattern):
+    path = tmp_path / name
+    if content is None:
+        header = (demo_dir / "cohort.csv").read_text(encoding="utf-8").splitlines()[0]
+        content = (header + "\n").encode()
+    path.write_bytes(content)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 1, re.escape(name), pattern)
+
+
+def test_check_missing_file_is_a_usage_error_naming_it(demo_dir, tmp_path):
+    result = invoke("check", tmp_path / "nowhere.csv", "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 2, "nowhere.csv", "does not exist")
+
+
+def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
+    def spoil(frame):
+        frame = frame.copy()
+        frame.loc[3, "transplant_date"] = "2023-02-30"
+        frame.loc[7, "transplant_date"] = "next spring"
+        return frame
+
+    path = _extract(demo_dir, tmp_path, "dates.csv", spoil)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF)
+    assert_exit(result, 0, "120 records read, 118 kept, 2 excluded",
+                "'2023-02-30' is not a date", "'next spring' is not a date")
+
+
+def test_check_bad_cutoff_is_a_usage_error(demo_dir):
+    result = invoke("check", demo_dir / "cohort.csv", "--spec", demo_dir / "spec.toml",
+                    "--cutoff", "30/06/2025")
+    assert_exit(result, 2, "--cutoff '30/06/2025' is not a date", "YYYY-MM-DD")
+
+
+def test_check_reports_a_malformed_spec(demo_dir, tmp_path):
+    spec = tmp_path / "broken.toml"
+    spec.write_text("[columns\nrecipient = 'recipient_id'\n")
+    result = invoke("check", demo_dir / "cohort.csv", "--spec", spec)
+    assert_exit(result, 1, "broken.toml", "TOML")
+
+
+# --- fit --------------------------------------------------------------------------------
+
+
+def test_fit_writes_a_model(demo_dir, network, tmp_path):
+    out = tmp_path / "model.json"
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_failure", "--horizon", 365,
+                    "--cutoff", REFERENCE_CUTOFF, "--ties", "breslow", "--out", out)
+    planted = network.planted[network.planted["role"] == "reference"]
+    kept = len(network.reference) - int((planted["handling"] == "excluded").sum())
+    assert_exit(result, 0, f"on {kept} recipients", f"model written to {re.escape(str(out))}")
+    model = json.loads(out.read_text(encoding="utf-8"))
+    assert (model["outcome"], model["horizon_days"], model["cutoff"]) == (
+        "graft_failure", 365, REFERENCE_CUTOFF)
+    assert model["fit"]["ties"] == "breslow"
+
+
+def test_fit_unknown_outcome_is_named(demo_dir, tmp_path):
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_survival", "--horizon", 365,
+                    "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
+    assert_exit(result, 1, "'graft_survival'", "graft_failure, death")
+    assert not (tmp_path / "model.json").exists()
+
+
+@pytest.mark.parametrize(
+    ("option", "value", "pattern"),
+    [
+        ("--cutoff", "2022-13-31", "--cutoff '2022-13-31' is not a date"),
+        ("--from", "last year", "--from 'last year' is not a date"),
+        ("--horizon", "0", "--horizon"),
+        ("--ties", "exact", "--ties"),
+    ],
+)
+def test_fit_bad_options_are_usage_errors(demo_dir, tmp_path, option, value, pattern):
+    args = {"--outcome": "graft_failure", "--horizon": "365", "--cutoff": REFERENCE_CUTOFF,
+            "--out": str(tmp_path / "model.json"), option: value}
+    flat = [part for pair in args.items() for part in pair]
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml", *flat)
+    assert_exit(result, 2, re.escape(pattern))
+    assert not (tmp_path / "model.json").exists()
+
+
+# --- evaluate ---------------------------------------------------------------------------
+
+
+def _evaluate(demo_dir: Path, out: Path, *extra: object, model: Path | None = None) -> Result:
+    return invoke("evaluate", demo_dir / "cohort.csv", "--model", model or demo_dir / "model.json",
+                  "--rules", demo_dir / "rules.toml", "--cutoff", COHORT_CUTOFF,
+                  "--from", "2022-01-01", "--to", "2024-12-31", "--no-report", *extra,
+                  "--out", out)
+
+
+@pytest.mark.parametrize(
+    ("prior", "expected"),
+    [
+        ("eb", {"method": "empirical_bayes", "free_mean": False}),
+        ("eb-free", {"method": "empirical_bayes", "free_mean": True}),
+        ("fixed:2,2", {"method": "fixed", "shape": 2.0, "rate": 2.0}),
+    ],
+)
+def test_evaluate_writes_the_files_with_the_chosen_prior(demo_dir, tmp_path, prior, expected):
+    out = tmp_path / "results"
+    out.mkdir()  # an existing empty folder is fine
+    result = _evaluate(demo_dir, out, "--prior", prior)
+    assert_exit(result, 0, f"evaluation files written to {re.escape(str(out))}")
+    for name in EVALUATION_FILES:
+        assert (out / name).is_file(), name
+    assert not (out / "report.html").exists()  # --no-report
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    assert {key: run["prior"][key] for key in expected} == expected
+    assert run["window"] == ["2022-01-01", "2024-12-31"]
+    assert run["cutoff"] == COHORT_CUTOFF
+    programs = pd.read_csv(out / "programs.csv")
+    assert sorted(programs["program"]) == PROGRAMS
+
+
+def test_evaluate_fixed_prior_gives_the_conjugate_posterior(demo_dir, tmp_path):
+    out = tmp_path / "results"
+    assert_exit(_evaluate(demo_dir, out, "--prior", "fixed:2,2"), 0)
+    programs = pd.read_csv(out / "programs.csv")
+    # Gamma(2, 2) prior and Poisson(HR E) counts: posterior Gamma(2 + O, 2 + E); mean and
+    # equal-tailed 95% limits from scipy.stats.gamma. Tolerance: the CSV keeps 10 digits.
+    shape = 2 + programs["observed"].to_numpy(float)
+    rate = 2 + programs["expected"].to_numpy(float)
+    posterior = stats.gamma(shape, scale=1 / rate)
+    assert programs["hr_mean"].to_numpy() == pytest.approx(posterior.mean(), rel=1e-8)
+    assert programs["hr_lower"].to_numpy() == pytest.approx(posterior.ppf(0.025), rel=1e-8)
+    assert programs["hr_upper"].to_numpy() == pytest.approx(posterior.ppf(0.975), rel=1e-8)
+
+
+@pytest.mark.parametrize("prior", ["flat", "fixed:2", "fixed:two,2", "fixed:-1,2", "fixed:0,1"])
+def test_evaluate_bad_prior_is_a_usage_error(demo_dir, tmp_path, prior):
+    out = tmp_path / "results"
+    result = _evaluate(demo_dir, out, "--prior", prior)
+    assert_exit(result, 2, "--prior", "fixed:2,2")
+    assert not out.exists()
+
+
+def test_evaluate_refuses_an_edited_model(demo_dir, tmp_path):
+    model = json.loads((demo_dir / "model.json").read_text(encoding="utf-8"))
+    model["coefficients"]["coef"][0] += 0.5
+    edited = tmp_path / "edited.json"
+    edited.write_text(json.dumps(model, indent=2), encoding="utf-8")
+    result = _evaluate(demo_dir, tmp_path / "results", model=edited)
+    assert_exit(result, 1, "edited.json", "checksum does not match", "refit")
+
+
+def test_evaluate_refuses_a_model_that_is_not_json(demo_dir, tmp_path):
+    broken = tmp_path / "broken.json"
+    broken.write_text("{coefficients: ", encoding="utf-8")
+    result = _evaluate(demo_dir, tmp_path / "results", model=broken)
+    assert_exit(result, 1, "broken.json", "not valid JSON", "casemix fit")
+
+
+def test_evaluate_without_a_cutoff_asks_for_one(demo_dir, tmp_path):
+    result = invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                    "--no-report", "--out", tmp_path / "results")
+    assert_exit(result, 1, "cut-off", "--cutoff")
+
+
+def test_evaluate_reports_a_cohort_missing_a_covariate(demo_dir, tmp_path):
+    path = _extract(demo_dir, tmp_path, "no_bmi.csv", lambda f: f.drop(columns="bmi"))
+    result = invoke("evaluate", path, "--model", demo_dir / "model.json",
+                    "--cutoff", COHORT_CUTOFF, "--no-report", "--out", tmp_path / "results")
+    assert_exit(result, 1, "no_bmi.csv", "'bmi'")
+
+
+# --- report -----------------------------------------------------------------------------
+
+
+def test_report_writes_an_html_file_with_every_program(evaluation_dir, tmp_path):
+    folder = tmp_path / "results"
+    shutil.copytree(evaluation_dir, folder)
+    result = invoke("report", folder)
+    assert_exit(result, 0, re.escape(f"report: {folder / 'report.html'}"))
+    firsts = {row[0] for row in html_rows(folder / "report.html") if row}
+    assert set(PROGRAMS) <= firsts
+
+
+def test_report_suppress_below_hides_small_counts(evaluation_dir, tmp_path):
+    folder = tmp_path / "results"
+    shutil.copytree(evaluation_dir, folder)
+    out = tmp_path / "public.html"
+    result = invoke("report", folder, "--out", out, "--suppress-below", 11)
+    assert_exit(result, 0, re.escape(f"report: {out}"))
+    programs = pd.read_csv(folder / "programs.csv").set_index("program")
+    small = programs.index[programs["observed"].between(1, 10)]
+    assert len(small), "the demo has programs with fewer than 11 events"
+    text = out.read_text(encoding="utf-8")
+    assert "Counts from 1 to 10 are hidden" in text
+    rows = [row for row in html_rows(out) if row and row[0] in set(small)]
+    for code in small:  # a table cell never holds the hidden count itself
+        own = [row for row in rows if row[0] == code]
+        assert any("<11" in row for row in own), own
+        assert not any(str(programs.loc[code, "observed"]) in row for row in own), own
+    public = pd.read_csv(folder / "public" / "programs.csv", dtype=str).set_index("program")
+    assert (public.loc[small, "observed"] == "<11").all()
+    assert pd.read_csv(folder / "programs.csv").equals(programs.reset_index())  # unchanged
+
+
+def test_report_without_suppression_shows_the_small_counts(evaluation_dir, tmp_path):
+    # the counterpart of the test above: the same rows hold the counts when not suppressed
+    folder = tmp_path / "results"
+    shutil.copytree(evaluation_dir, folder)
+    assert_exit(invoke("report", folder), 0)
+    programs = pd.read_csv(folder / "programs.csv").set_index("program")
+    rows = [row for row in html_rows(folder / "report.html") if row and row[0] == "LV09"]
+    assert any(str(programs.loc["LV09", "observed"]) in row for row in rows)
+    assert "&lt;11" not in (folder / "report.html").read_text(encoding="utf-8")
+
+
+def test_report_of_an_incomplete_folder_names_the_missing_file(tmp_path):
+    (tmp_path / "results").mkdir()
+    result = invoke("report", tmp_path / "results")
+    assert_exit(result, 1, "programs.csv", "casemix evaluate")
+
+
+def test_report_suppress_below_one_is_a_usage_error(evaluation_dir):
+    assert_exit(invoke("report", evaluation_dir, "--suppress-below", 1), 2, "--suppress-below")
+
+
+# --- audit ------------------------------------------------------------------------------
+
+
+def test_audit_writes_its_folder(demo_dir, network, tmp_path):
+    out = tmp_path / "audit"
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--cutoff", COHORT_CUTOFF,
+                    "--bootstrap", 20, "--seed", 1, "--out", out)
+    assert_exit(result, 0, f"audit written to {re.escape(str(out))}")
+    findings = json.loads((out / "findings.json").read_text(encoding="utf-8"))
+    assert findings
+    for finding in findings:  # every finding is shown to the user, not only saved
+        assert f"- {finding}" in result.output
+    facts = json.loads((out / "audit.json").read_text(encoding="utf-8"))
+    planted = network.planted[network.planted["role"] == "cohort"]
+    cohort = len(network.cohort) - int((planted["handling"] == "excluded").sum())
+    assert (facts["bootstrap"], facts["seed"], facts["cohort_recipients"]) == (20, 1, cohort)
+
+
+def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",
+                    "--out", tmp_path / "audit")
+    assert_exit(result, 2, "--cutoff 'June 2025' is not a date")
+
+
+# --- version and help -------------------------------------------------------------------
+
+
+def test_version_is_the_installed_one():
+    result = invoke("--version")
+    assert_exit(result, 0)
+    assert result.output.strip() == f"casemix {importlib.metadata.version('casemix')}"
+
+
+def test_top_level_help_lists_every_command_and_points_to_the_demo():
+    result = invoke("--help")
+    assert_exit(result, 0, "casemix demo")
+    for command in COMMANDS:
+        assert re.search(rf"^\s+{command}\s", result.output, re.M), command
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_help_of_every_command_shows_an_example_using_its_own_options(command):
+    result = invoke(command, "--help")
+    assert_exit(result, 0, f"Example: casemix {command}")
+    example = result.output.split("Example:", 1)[1].split("\n\n", 1)[0]
+    options = set(re.findall(r"--[a-z][a-z-]*", example))
+    assert options  # every example shows at least one option
+    listing = result.output.split("\nOptions:\n", 1)[1]
+    for option in options:  # so that an example never shows an option the command lacks
+        assert re.search(rf"^\s+{option}\b", listing, re.M), (command, option)
