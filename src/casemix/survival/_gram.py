@@ -38,6 +38,15 @@ def weighted_gram(X: np.ndarray, v: np.ndarray, center: np.ndarray | None = None
     return out
 
 
+def weighted_variance(X: np.ndarray, w: np.ndarray, center: np.ndarray) -> np.ndarray:
+    """Return the weighted variance of each column about ``center``, shape (p,)."""
+    out = np.zeros(X.shape[1])
+    for start in range(0, X.shape[0], BLOCK_ROWS):
+        block = X[start : start + BLOCK_ROWS] - center
+        out += w[start : start + BLOCK_ROWS] @ (block * block)
+    return out / w.sum()
+
+
 def weighted_group_sums(X: np.ndarray, v: np.ndarray, starts: np.ndarray) -> np.ndarray:
     """Return the sums of v_i x_i over consecutive row groups beginning at ``starts``.
 

@@ -329,18 +329,26 @@ def _chi2(statistic: float, df: int) -> TestResult:
 
 
 def _check_information(info: np.ndarray, scale: np.ndarray, names: tuple[str, ...]) -> None:
-    """Refuse columns the partial likelihood carries no information about (singular I(0))."""
+    """Refuse collinear columns and columns without information (a singular I(0))."""
     scaled = info / np.outer(scale, scale)
     eigval, eigvec = np.linalg.eigh(scaled)
     tiny = eigval < 1e-10 * max(eigval.max(), 1e-300)
     if tiny.any():
         vec = eigvec[:, np.flatnonzero(tiny)[0]]
-        listed = ", ".join(f"'{names[j]}'" for j in np.flatnonzero(np.abs(vec) > 1e-6))
+        involved = np.flatnonzero(np.abs(vec) > 1e-6)
+        listed = ", ".join(f"'{names[j]}'" for j in involved)
+        if involved.size > 1:
+            raise InputError(
+                f"columns {listed} are collinear within the risk sets (one is a linear "
+                "combination of the others), so their effects cannot be separated; drop one "
+                "of them or merge categories (with strata: a covariate may be constant within "
+                "every stratum)"
+            )
         raise InputError(
             f"column {listed} carries no information about the hazard: within every risk set "
-            "it is constant or a combination of other columns (for example a covariate that is "
-            "constant within every stratum, or one that varies only among recipients censored "
-            "before the first event); drop it, or do not stratify on it"
+            "it is constant (for example a covariate that is constant within every stratum, or "
+            "one that varies only among recipients censored before the first event); drop it, "
+            "or do not stratify on it"
         )
 
 
