@@ -91,11 +91,12 @@ def test_completeness_and_lost_to_follow_up(records: Records) -> None:
     assert fu["observed_days"].tolist() == [1337, 303]
     assert fu["potential_days"].tolist() == [1337, 609]
     np.testing.assert_allclose(fu["completeness"], [1.0, 303 / 609], rtol=1e-15)
-    assert fu["lost_to_followup"].tolist() == [0, 0]
-    # C08 was last seen 306 days before its potential end (365 - 59): lost beyond 180 days.
-    strict = build_cohort(records, "graft_failure", 365, "2025-06-30", lost_after_days=180)
-    assert strict.followup["lost_to_followup"].tolist() == [0, 1]
-    assert strict.lost_after_days == 180.0
+    # C08 was last seen 306 days before its potential end (365 - 59): lost beyond the default
+    # 182 days, not beyond a lenient 365.
+    assert fu["lost_to_followup"].tolist() == [0, 1]
+    assert cohort.lost_after_days == 182.0
+    lenient = build_cohort(records, "graft_failure", 365, "2025-06-30", lost_after_days=365)
+    assert lenient.followup["lost_to_followup"].tolist() == [0, 0]
 
 
 def test_everyone_on_the_cut_off_day_has_undefined_completeness(tmp_path: Path) -> None:

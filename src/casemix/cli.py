@@ -150,6 +150,10 @@ CutoffOption = Annotated[
 FromOption = Annotated[
     str | None, typer.Option("--from", help="First transplant date of the window (YYYY-MM-DD).")
 ]
+ModelOption = Annotated[
+    Path, typer.Option("--model", exists=True, dir_okay=False, help="Reference model (.json).")
+]
+OutDirOption = Annotated[Path, typer.Option("--out", file_okay=False, help="Output folder.")]
 ToOption = Annotated[
     str | None, typer.Option("--to", help="Last transplant date of the window (YYYY-MM-DD).")
 ]
@@ -247,10 +251,8 @@ def fit(
 @app.command()
 def evaluate(
     records: ExistingFile,
-    model: Annotated[
-        Path, typer.Option("--model", exists=True, dir_okay=False, help="Reference model (.json).")
-    ],
-    out_dir: Annotated[Path, typer.Option("--out", file_okay=False, help="Output folder.")],
+    model: ModelOption,
+    out_dir: OutDirOption,
     rules: Annotated[
         Path | None,
         typer.Option("--rules", exists=True, dir_okay=False, help="Verdict rules (TOML)."),
@@ -380,10 +382,8 @@ def report(
 @app.command()
 def audit(
     reference_records: ExistingFile,
-    model: Annotated[
-        Path, typer.Option("--model", exists=True, dir_okay=False, help="Reference model (.json).")
-    ],
-    out_dir: Annotated[Path, typer.Option("--out", file_okay=False, help="Output folder.")],
+    model: ModelOption,
+    out_dir: OutDirOption,
     cohort: Annotated[
         Path | None,
         typer.Option("--cohort", exists=True, dir_okay=False, help="Evaluation cohort records."),

@@ -15,9 +15,9 @@ Per program, the follow-up completeness index (Clark, Altman & De Stavola, 2002)
 ``sum(observed) / sum(potential)`` where observed = ``time`` and potential = ``D - T`` for an
 event and ``P - T`` otherwise; it is NaN when the potential follow-up is zero (everyone
 transplanted on the cut-off day). A recipient is **lost to follow-up** when, without an event,
-``P - L`` is more than ``lost_after_days`` (default 365) days: last seen more than a year
-before the end of the follow-up that could have been observed. With a horizon of 365 days or
-less nobody can be lost under the default.
+``P - L`` is more than ``lost_after_days`` (default 182) days: last seen more than about six
+months (a usual interval between follow-up visits; our choice, configurable) before the end of
+the follow-up that could have been observed.
 
 Plain pandas/numpy arithmetic on datetime64 columns; nothing is hand-written beyond that.
 """
@@ -71,7 +71,7 @@ class Cohort:
     cutoff: pd.Timestamp
     window: tuple[pd.Timestamp | None, pd.Timestamp | None]
     n_read: int
-    lost_after_days: float = 365.0
+    lost_after_days: float = 182.0
 
 
 def follow_up(
@@ -122,7 +122,7 @@ def build_cohort(
     cutoff: object = None,
     window: tuple[object, object] | None = None,
     *,
-    lost_after_days: float = 365.0,
+    lost_after_days: float = 182.0,
 ) -> Cohort:
     """Give every kept recipient its follow-up ``time`` and ``event`` for one outcome.
 
@@ -140,7 +140,7 @@ def build_cohort(
         Inclusive transplant-date window; ``None`` keeps every transplant (the spec's
         ``cohort_from``/``cohort_to`` apply only when passed, e.g.
         ``window=spec.analysis.window``).
-    lost_after_days : float, default 365
+    lost_after_days : float, default 182
         A recipient without an event last seen more than this many days before the end of
         the potential follow-up counts as lost to follow-up.
 
