@@ -100,11 +100,16 @@ def dispersion_findings(summary: pd.DataFrame | None) -> list[str]:
     row = summary.iloc[0]
     if row.p_value < THRESHOLDS["overdispersion_p_value"]:
         return [
-            f"programs vary more than chance allows (phi = {row.phi:.2f}, {_p(row.p_value)}; "
+            "after the most extreme programs are winsorised, programs still vary more than "
+            f"chance allows (phi = {row.phi:.2f}, {_p(row.p_value)}; "
             f"between-program SD of O/E tau = {np.sqrt(row.tau2):.2f}): consider funnel limits "
             "adjusted for overdispersion"
         ]
-    return [f"programs vary no more than chance allows (phi = {row.phi:.2f}, {_p(row.p_value)})"]
+    return [
+        "after the most extreme programs are winsorised, the rest vary no more than chance "
+        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)}); outlying programs are judged by "
+        "their own verdicts"
+    ]
 
 
 def prior_findings(wide: pd.DataFrame | None, notes: list[str]) -> list[str]:
