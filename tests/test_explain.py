@@ -1,9 +1,10 @@
 """Case-mix decomposition of log(E / E_avg) over covariate groups, on rossi.
 
 The outside references are lifelines (Cox fit, baseline read as a step function) for E and
-E_avg = sum_i H0(t_i) at the reference-average linear predictor, and scipy.integrate.quad for
-the Aumann-Shapley path integral int_0^1 sum_i w_i(s) lp_ig ds, with weights
-w_i(s) proportional to H0(t_i) exp(s lp_i).
+E_avg = exp(sum_g c_g) sum_i H0(t_i), with c_g the log-mean-exp over the reference population
+of covariate group g's term (the average recipient on the risk scale; scipy.special.logsumexp),
+and scipy.integrate.quad for the Aumann-Shapley path integral int_0^1 sum_i w_i(s) d_ig ds of
+the offset terms d_ig = lp_ig - c_g, with weights w_i(s) proportional to H0(t_i) exp(s d_i).
 """
 
 from __future__ import annotations
@@ -15,6 +16,7 @@ import pandas as pd
 import pytest
 import rossi_records as rr
 from scipy import integrate
+from scipy.special import logsumexp
 
 from casemix import build_cohort, fit_reference, load_spec, read_records
 from casemix.expected import expected_events
@@ -68,6 +70,17 @@ def explained(model_a):
     return _explain(*model_a)
 
 
+def _offsets(lp_groups: np.ndarray) -> np.ndarray:
+    """Log-mean-exp of each group's term over the reference population (scipy)."""
+    return logsumexp(lp_groups, axis=0) - np.log(lp_groups.shape[0])
+
+
+def _lifelines_terms(cph, rossi) -> np.ndarray:
+    names = list(cph.params_.index)
+    centred = rossi[names].to_numpy(float) - rossi[names].to_numpy(float).mean(axis=0)
+    return centred * cph.params_.to_numpy()
+
+
 def _aumann_shapley(hazard: np.ndarray, lp_groups: np.ndarray) -> np.ndarray:
     """Each group's path integral by adaptive quadrature (scipy.integrate.quad)."""
     lp = lp_groups.sum(axis=1)
@@ -109,9 +122,10 @@ def test_total_is_log_e_over_e_average_from_lifelines(explained, rossi):
     # lifelines' baseline is at the covariate means: H0(t_i) is the expected count of the
     # reference-average recipient followed as long as recipient i (step read at its week).
     hazard, risk = rr.lifelines_hazard_and_risk(cph, rossi, rossi, rossi["week"])
+    offset = _offsets(_lifelines_terms(cph, rossi)).sum()
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
-        e, e_avg = float(hazard[rows] @ risk[rows]), float(hazard[rows].sum())
+        e, e_avg = float(hazard[rows] @ risk[rows]), float(hazard[rows].sum() * np.exp(offset))
         # E: REFERENCE_CHECKS.md section 5, model A by race, 15.2347 / 98.7653.
         assert e == pytest.approx({"race0": 15.2347, "race1": 98.7653}[program], rel=1e-5)
         row = totals.loc[program]
@@ -125,8 +139,8 @@ def test_groups_match_an_independent_path_integral(explained, rossi):
     cph = rr.lifelines_fit(rossi, rr.MODEL_A)
     names = list(cph.params_.index)
     hazard, _ = rr.lifelines_hazard_and_risk(cph, rossi, rossi, rossi["week"])
-    centred = rossi[names].to_numpy(float) - rossi[names].to_numpy(float).mean(axis=0)
-    lp_groups = centred * cph.params_.to_numpy()
+    terms = _lifelines_terms(cph, rossi)
+    lp_groups = terms - _offsets(terms)
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         theirs = _aumann_shapley(hazard[rows], lp_groups[rows])
@@ -138,13 +152,18 @@ def test_groups_match_an_independent_path_integral(explained, rossi):
 
 def test_the_average_recipient_has_no_case_mix_effect(folder, rossi, model_a):
     _, model = model_a
-    # Five recipients at exactly the reference population's means (the model's centre),
-    # with different follow-up, in a program of their own.
+    # Five recipients at the reference population's average on the risk scale: each
+    # covariate's term (x - mean) * beta equals that covariate's log-mean-exp over rossi
+    # (means from pandas, log-mean-exp from scipy), with different follow-up, in a program
+    # of their own.
     means = rossi[list(rr.MODEL_A)].mean()
     np.testing.assert_allclose(model.fit.center, means.to_numpy(), rtol=1e-14)
+    terms = (rossi[list(rr.MODEL_A)] - means).to_numpy() * model.fit.coef
+    np.testing.assert_allclose(model.group_offsets, _offsets(terms), rtol=1e-9, atol=1e-13)
+    at = means.to_numpy() + _offsets(terms) / model.fit.coef
     average = rossi.head(5).assign(
         recipient_id=[f"M{i}" for i in range(5)], week=[3, 10, 26, 40, 52],
-        arrest=[1, 0, 1, 1, 0], **{name: float(means[name]) for name in rr.MODEL_A},
+        arrest=[1, 0, 1, 1, 0], **{name: float(v) for name, v in zip(rr.MODEL_A, at, strict=True)},
     )  # fmt: skip
     table = pd.concat([_by_race(rossi), rr.extract(average, ["average"] * 5)], ignore_index=True)
     records = _read(folder, "with_average", table, rr.MODEL_A, kinds=NUMERIC)
@@ -174,6 +193,7 @@ def test_a_categorical_is_one_group(folder, rossi):
     x = dummies[["age", "many", "some"]].to_numpy(float)
     terms = (x - x.mean(axis=0)) * cph.params_.to_numpy()
     lp_groups = np.column_stack([terms[:, 0], terms[:, 1] + terms[:, 2]])
+    lp_groups = lp_groups - _offsets(lp_groups)
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         ours = out[(out["program"] == program) & (out["group"] != TOTAL)]["contribution"]
@@ -191,7 +211,9 @@ def test_stratified_model_sums_to_the_total(folder, rossi):
         rossi[["age", "wexp", "prio", "fin", "week", "arrest"]], "week", "arrest"
     )
     names = list(cph.params_.index)
-    risk = np.exp((rossi[names].to_numpy(float) - cph._norm_mean.to_numpy()) @ cph.params_)
+    terms = (rossi[names].to_numpy(float) - cph._norm_mean.to_numpy()) * cph.params_.to_numpy()
+    risk = np.exp(terms.sum(axis=1))
+    offset = _offsets(terms).sum()
     hazard = np.empty(len(rossi))
     for level in (0, 1):
         rows = (rossi["fin"] == level).to_numpy()
@@ -203,7 +225,9 @@ def test_stratified_model_sums_to_the_total(folder, rossi):
         rows = (rossi["race"] == race).to_numpy()
         # Each recipient's baseline is his or her own stratum's (lifelines, step read).
         assert total.expected == pytest.approx(hazard[rows] @ risk[rows], rel=1e-5)
-        assert total.expected_average == pytest.approx(hazard[rows].sum(), rel=1e-5)
+        assert total.expected_average == pytest.approx(
+            hazard[rows].sum() * np.exp(offset), rel=1e-5
+        )
 
 
 def test_a_spline_is_one_group(folder, rossi):

@@ -17,6 +17,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+from scipy.special import logsumexp
 
 import casemix
 from casemix._io import write_json
@@ -110,6 +111,10 @@ class ReferenceModel:
         Harrell's C of the linear predictor on the fitting data.
     casemix_version : str
         Version that fitted the model.
+    group_offsets : tuple of float
+        Per covariate group (in the order of first appearance in ``design.groups``), the
+        log-mean-exp of the group's log relative risk over the reference population: where the
+        reference population's average recipient stands on the risk scale (see casemix.explain).
     """
 
     spec: Spec
@@ -122,6 +127,7 @@ class ReferenceModel:
     fingerprint: str
     concordance: float
     casemix_version: str
+    group_offsets: tuple[float, ...]
 
     def matrices(self, cohort: Cohort) -> tuple[np.ndarray, np.ndarray | None]:
         """Return the design matrix and strata of a cohort under this model's frozen design."""
@@ -150,6 +156,10 @@ class ReferenceModel:
                 for s, b in zip(self.fit.strata_levels, self.fit.baselines, strict=True)
             ],
             "fit": _facts_dict(self.fit, self.concordance),
+            "casemix_reference": {
+                "groups": list(dict.fromkeys(self.design.groups)),
+                "log_mean_exp": list(self.group_offsets),
+            },
             "fingerprint": {
                 "sha256": self.fingerprint,
                 "of": "time, event, design matrix and strata of the fitting data",
@@ -175,6 +185,21 @@ class ReferenceModel:
         path = Path(path)
         content = _read_json(path)
         return model_from_dict(content, where=str(path))
+
+
+def group_terms(design: Design, fit: CoxFit, X: np.ndarray) -> tuple[list[str], np.ndarray]:
+    """Split each row's log relative risk (x - center) . beta over covariate groups.
+
+    Returns
+    -------
+    groups : list of str
+        Covariate groups in the order of first appearance in ``design.groups``.
+    terms : ndarray, shape (n, len(groups))
+        Row sums equal (x - center) . beta.
+    """
+    groups = list(dict.fromkeys(design.groups))
+    member = np.array([[g == name for g in design.groups] for name in groups], dtype=float)
+    return groups, ((X - fit.center) * fit.coef) @ member.T
 
 
 def _read_json(path: Path) -> dict:
@@ -261,6 +286,7 @@ def _model(body: dict) -> ReferenceModel:
         fingerprint=str(body["fingerprint"]["sha256"]),
         concordance=float(facts["concordance"]),
         casemix_version=str(body["casemix_version"]),
+        group_offsets=tuple(float(v) for v in body["casemix_reference"]["log_mean_exp"]),
     )
 
 
@@ -379,6 +405,8 @@ def fit_reference(
         data.time, data.event, data.X, ties=ties, strata=data.strata, names=data.design.columns
     )
     c_index = concordance(data.time, data.event, fit.linear_predictor(data.X)).c
+    _, terms = group_terms(data.design, fit, data.X)
+    offsets = logsumexp(terms, axis=0) - np.log(terms.shape[0])
     return ReferenceModel(
         spec=spec,
         design=data.design,
@@ -390,6 +418,7 @@ def fit_reference(
         fingerprint=data.fingerprint(),
         concordance=float(c_index),
         casemix_version=casemix.__version__,
+        group_offsets=tuple(float(v) for v in offsets),
     )
 
 
