@@ -178,7 +178,7 @@ def messy(tmp_path: Path):
 def test_every_row_is_kept_or_excluded_with_its_reason(messy) -> None:
     assert messy.n_read == len(MESSY) == len(messy.frame) + len(messy.exclusions)
     assert list(messy.frame.index) == [r - 1 for r in KEPT_ROWS]  # 0-based file positions
-    assert list(messy.exclusions.columns) == ["row", "recipient", "reason", "program"]
+    assert list(messy.exclusions.columns) == ["row", "recipient", "reason", "program", "kind"]
     assert dict(zip(messy.exclusions["row"], messy.exclusions["reason"], strict=True)) == EXCLUDED
     recipients = messy.exclusions.set_index("row")["recipient"]
     assert recipients[3] == "R03" and pd.isna(recipients[12])

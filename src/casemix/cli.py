@@ -39,6 +39,9 @@ out = Console(highlight=False, soft_wrap=True)
 err = Console(stderr=True, highlight=False, soft_wrap=True)
 
 
+CHECK_LISTED = 20
+
+
 class Ties(str, Enum):
     efron = "efron"
     breslow = "breslow"
@@ -182,6 +185,13 @@ def check(
     )
     if len(result.exclusions):
         _print_counts("Excluded, by reason", _reason_counts(result.exclusions), "reason")
+        shown = result.exclusions[["row", "recipient", "reason"]].head(CHECK_LISTED)
+        title = "Excluded records" + (
+            f" (first {CHECK_LISTED} of {len(result.exclusions)})"
+            if len(result.exclusions) > CHECK_LISTED
+            else ""
+        )
+        _print_counts(title, shown.astype(str), "reason")
         by_program = (
             result.exclusions.fillna({"program": "(missing)"})
             .groupby("program")
@@ -196,8 +206,8 @@ def check(
 
 
 def _reason_counts(exclusions: pd.DataFrame) -> pd.DataFrame:
-    reasons = exclusions["reason"].str.split("; ").explode()
-    return reasons.value_counts().rename_axis("reason").rename("records").reset_index()
+    kinds = exclusions["kind"].str.split("; ").explode()
+    return kinds.value_counts().rename_axis("reason").rename("records").reset_index()
 
 
 def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:

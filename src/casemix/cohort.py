@@ -169,7 +169,7 @@ def build_cohort(
             )
     tx = frame[spec.columns.transplant_date]
     reasons = _window_reasons(tx, stamp, start, end)
-    out = frame.loc[reasons.isna()].copy()
+    out = frame.loc[reasons["reason"].isna()].copy()
     fu = follow_up(
         out[spec.columns.transplant_date],
         out[spec.columns.last_seen],
@@ -238,29 +238,34 @@ def _window(window: tuple[object, object] | None) -> tuple[pd.Timestamp | None, 
 
 
 def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp, start: pd.Timestamp | None,
-                    end: pd.Timestamp | None) -> pd.Series:
-    """Reason text for recipients outside the cut-off or window (missing for the others)."""
+                    end: pd.Timestamp | None) -> pd.DataFrame:
+    """Reason text and kind for recipients outside the cut-off or window (missing otherwise)."""
     day = tx.dt.strftime("%Y-%m-%d")
-    reasons = pd.Series(None, index=tx.index, dtype=object)
-    checks = [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}")]
+    reasons = pd.DataFrame({"reason": None, "kind": None}, index=tx.index, dtype=object)
+    checks = [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
+               "transplanted after the cut-off")]
     if end is not None:
-        checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})"))
+        checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})",
+                       "transplanted outside the cohort window"))
     if start is not None:
-        checks.append((tx < start, f", before the cohort window (from {start:%Y-%m-%d})"))
-    for mask, text in checks:
-        mask = mask & reasons.isna()
-        reasons[mask] = ("transplanted " + day[mask] + text).to_numpy(dtype=object)
+        checks.append((tx < start, f", before the cohort window (from {start:%Y-%m-%d})",
+                       "transplanted outside the cohort window"))
+    for mask, text, kind in checks:
+        mask = mask & reasons["reason"].isna()
+        reasons.loc[mask, "reason"] = ("transplanted " + day[mask] + text).to_numpy(dtype=object)
+        reasons.loc[mask, "kind"] = kind
     return reasons
 
 
-def _exclusions(records: Records, reasons: pd.Series) -> pd.DataFrame:
-    hit = reasons.notna()
+def _exclusions(records: Records, reasons: pd.DataFrame) -> pd.DataFrame:
+    hit = reasons["reason"].notna()
     new = pd.DataFrame(
         {
             "row": (reasons.index[hit] + 1).astype(np.int64),
             "recipient": records.frame.loc[hit, records.spec.columns.recipient].to_numpy(),
-            "reason": reasons[hit].to_numpy(dtype=object),
+            "reason": reasons.loc[hit, "reason"].to_numpy(dtype=object),
             "program": records.frame.loc[hit, records.spec.columns.program].to_numpy(),
+            "kind": reasons.loc[hit, "kind"].to_numpy(dtype=object),
         }
     )
     parts = [p for p in (records.exclusions, new) if len(p)]

@@ -135,19 +135,23 @@ class _Ledger:
 
     def __init__(self, n: int) -> None:
         self.reasons: dict[int, list[str]] = {}
+        self.kinds: dict[int, list[str]] = {}
         self.excluded = np.zeros(n, dtype=bool)
         self._bad_cells: dict[str, np.ndarray] = {}
 
-    def exclude(self, mask: np.ndarray, reason: str | Callable[[int], str],
+    def exclude(self, mask: np.ndarray, kind: str, reason: str | Callable[[int], str],
                 bad_cell: str | None = None) -> None:
         """Add ``reason`` (text, or a function of the position) to every masked record.
 
-        ``bad_cell`` names the column whose cell could not be read, so that the same cell is
-        not reported again as missing.
+        ``kind`` is the short category of the reason, free of any record's values, for counts
+        that may be published. ``bad_cell`` names the column whose cell could not be read, so
+        that the same cell is not reported again as missing.
         """
         for pos in np.flatnonzero(mask):
             text = reason if isinstance(reason, str) else reason(int(pos))
             self.reasons.setdefault(int(pos), []).append(text)
+            if kind not in self.kinds.setdefault(int(pos), []):
+                self.kinds[int(pos)].append(kind)
         self.excluded |= mask
         if bad_cell is not None:
             self._bad_cells[bad_cell] = mask
@@ -355,7 +359,7 @@ def _parse_date_columns(frame: pd.DataFrame, spec: Spec, path: Path, ledger: _Le
         dates, bad, present = _parse_dates(original, spec.date_format)
         where = f"records file '{path}': column '{column}'"
         _fail_if_mostly_bad(bad, present, original, where, "a date", fix)
-        ledger.exclude(bad.to_numpy(), lambda p, c=column, v=original: (
+        ledger.exclude(bad.to_numpy(), f"unreadable {column}", lambda p, c=column, v=original: (
             f"{c} '{v.iloc[p]}' is not a date (expected {expected})"), bad_cell=column)
         frame[column] = dates
 
@@ -389,7 +393,8 @@ def _parse_covariate(frame: pd.DataFrame, cov: Covariate, path: Path, ledger: _L
     bad = present & values.isna()
     where = f"records file '{path}': column '{cov.column}' (covariate {cov.name})"
     _fail_if_mostly_bad(bad, present, original, where, what, fix)
-    ledger.exclude(bad.to_numpy(), lambda p: f"{cov.column} '{original.iloc[p]}' is not {what}",
+    ledger.exclude(bad.to_numpy(), f"unreadable {cov.name}",
+                   lambda p: f"{cov.column} '{original.iloc[p]}' is not {what}",
                    bad_cell=cov.column)
     frame[cov.column] = values
 
@@ -406,17 +411,17 @@ def _check_records(frame: pd.DataFrame, spec: Spec, cutoff: pd.Timestamp | None,
     for column, what in required:
         # An unparsable date already has its own reason; only empty cells count here.
         empty = frame[column].isna().to_numpy() & ~ledger.unreadable(column)
-        ledger.exclude(empty, f"{what} (column '{column}') is missing")
+        ledger.exclude(empty, f"missing {what}", f"{what} (column '{column}') is missing")
     tx = frame[cols.transplant_date]
     for column in (cols.last_seen, *spec.event_columns):
         before = (frame[column] < tx).to_numpy()
-        ledger.exclude(before, lambda p, c=column: (
+        ledger.exclude(before, f"{column} before the transplant date", lambda p, c=column: (
             f"{c} {_day(frame[c].iloc[p])} is before the transplant date {_day(tx.iloc[p])}"))
     for cov in spec.covariates:
         _check_covariate(frame[cov.column], cov, ledger)
     if cutoff is not None:
         late = (tx > cutoff).to_numpy()
-        ledger.exclude(late, lambda p: (
+        ledger.exclude(late, "transplanted after the cut-off", lambda p: (
             f"transplanted {_day(tx.iloc[p])}, after the cut-off {_day(cutoff)}"))
 
 
@@ -427,15 +432,16 @@ def _day(value: pd.Timestamp) -> str:
 def _check_covariate(values: pd.Series, cov: Covariate, ledger: _Ledger) -> None:
     if cov.missing == "exclude":
         empty = values.isna().to_numpy() & ~ledger.unreadable(cov.column)
-        ledger.exclude(empty, f"{cov.name} (column '{cov.column}') is missing and its missing "
-                              "policy is \"exclude\"")
+        ledger.exclude(empty, f"missing {cov.name}",
+                       f"{cov.name} (column '{cov.column}') is missing and its missing "
+                       "policy is \"exclude\"")
     if cov.lower is None and cov.upper is None:
         return
     lower = -np.inf if cov.lower is None else cov.lower
     upper = np.inf if cov.upper is None else cov.upper
     outside = (values.notna() & ((values < lower) | (values > upper))).to_numpy()
     bounds = f"{lower:g} to {upper:g}"
-    ledger.exclude(outside, lambda p: (
+    ledger.exclude(outside, f"{cov.name} outside its plausible range", lambda p: (
         f"{cov.name} {values.iloc[p]:g} is outside the plausible range {bounds}"))
 
 
@@ -448,6 +454,7 @@ def _exclusion_frame(frame: pd.DataFrame, spec: Spec, ledger: _Ledger,
             "recipient": frame[spec.columns.recipient].to_numpy()[positions],
             "reason": ["; ".join(ledger.reasons[p]) for p in positions],
             "program": frame[spec.columns.program].to_numpy()[positions],
+            "kind": ["; ".join(ledger.kinds[p]) for p in positions],
         }
     )
 

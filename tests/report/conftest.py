@@ -149,8 +149,12 @@ def write_evaluation_folder(folder: Path, programs: dict | None = None, seed: in
     coefficients, concordance = _coefficients(recipients)
     coefficients.to_csv(folder / "coefficients.csv", index=False)
     pd.DataFrame({"row": [3, 17, 18, 40], "recipient": ["X1", "X2", "X3", "X4"],
-                  "reason": ["event before transplant", "missing program",
-                             "missing program", "transplant after cut-off"]}).to_csv(
+                  "reason": ["graft_loss_date 2021-01-02 is before the transplant date 2021-02-03",
+                             "program (column 'program') is missing",
+                             "program (column 'program') is missing",
+                             "transplanted 2025-08-31, after the cut-off 2025-06-30"],
+                  "kind": ["event before transplant", "missing program",
+                           "missing program", "transplant after cut-off"]}).to_csv(
         folder / "exclusions.csv", index=False)
     followup = recipients.groupby("program", sort=False).agg(recipients=("time", "size"))
     followup["completeness"] = np.linspace(0.91, 0.99, len(followup))

@@ -26,3 +26,10 @@ def test_public_tables_hide_small_counts_and_leave_out_records(evaluation_folder
         "records": ["<11", "<11", "<11"]}
     curves = pd.read_csv(out / "curves.csv", dtype=str)
     assert "<11" in set(curves["at_risk"])
+
+
+def test_public_exclusion_counts_carry_no_record_values(evaluation_folder, tmp_path):
+    # The per-record reason texts hold dates; the public counts use only the kinds.
+    out = write_public_tables(evaluation_folder, tmp_path / "public", 2)
+    text = (out / "exclusions_by_reason.csv").read_text()
+    assert "2021-01-02" not in text and "2025-08-31" not in text

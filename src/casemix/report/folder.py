@@ -29,7 +29,7 @@ _CONTRACT: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
          "oe_upper", "events_to_excess", "events_to_favorable"),
     ),
     "recipients.csv": (("recipient", "program"), ("time", "event", "expected")),
-    "exclusions.csv": (("recipient", "reason"), ("row",)),
+    "exclusions.csv": (("recipient", "reason", "kind"), ("row",)),
     "followup.csv": (("program",), ("recipients", "completeness", "lost_to_followup")),
     "casemix.csv": (("program", "group"), ("contribution", "factor")),
     "curves.csv": (

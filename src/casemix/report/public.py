@@ -30,19 +30,27 @@ PUBLIC_COUNTS = {
 
 
 def exclusions_by_reason(exclusions: pd.DataFrame) -> pd.DataFrame:
-    """Count excluded records per reason, most frequent first (ties by reason).
+    """Count excluded records per kind of reason, most frequent first (ties by reason).
+
+    The kinds (``exclusions.kind``) carry no record's own values (dates, ages), so the counts
+    can be published; a record excluded for several kinds counts once under their joint kind.
 
     Parameters
     ----------
     exclusions : pandas.DataFrame
-        One row per excluded record, with a ``reason`` column.
+        One row per excluded record, with a ``kind`` column.
 
     Returns
     -------
     pandas.DataFrame
-        Columns ``reason``, ``records``.
+        Columns ``reason`` (the kind), ``records``.
     """
-    counts = exclusions.groupby("reason", sort=True).size().rename("records").reset_index()
+    counts = (
+        exclusions.groupby(exclusions["kind"].rename("reason"), sort=True)
+        .size()
+        .rename("records")
+        .reset_index()
+    )
     return counts.sort_values(["records", "reason"], ascending=[False, True], kind="stable",
                               ignore_index=True)
 
