@@ -47,24 +47,29 @@ def weighted_variance(X: np.ndarray, w: np.ndarray, center: np.ndarray) -> np.nd
     return out / w.sum()
 
 
-def weighted_group_sums(X: np.ndarray, v: np.ndarray, starts: np.ndarray) -> np.ndarray:
-    """Return the sums of v_i x_i over consecutive row groups beginning at ``starts``.
+def weighted_group_sums(
+    X: np.ndarray, v: np.ndarray, starts: np.ndarray, rows: np.ndarray | None = None
+) -> np.ndarray:
+    """Return the sums of v_k x_rows[k] over consecutive groups of k beginning at ``starts``.
 
     Done as one sparse (groups x rows) by dense product, which reads X once and needs no
-    weighted copy of it.
+    weighted or reordered copy of it.
 
     Parameters
     ----------
     X : ndarray, shape (n, p)
-    v : ndarray, shape (n,)
+    v : ndarray, shape (m,)
+        Weights, in the order of ``rows``.
     starts : ndarray of int, shape (g,)
-        First row of each group, ascending, starting at 0.
+        Position in ``rows`` where each group begins, ascending, starting at 0.
+    rows : ndarray of int, shape (m,), optional
+        Rows of X in group order (default: 0 .. n - 1, so m = n).
 
     Returns
     -------
     ndarray, shape (g, p)
     """
-    n = X.shape[0]
-    indptr = np.append(starts, n)
-    groups = sparse.csr_matrix((v, np.arange(n), indptr), shape=(starts.size, n))
+    rows = np.arange(X.shape[0]) if rows is None else rows
+    indptr = np.append(starts, rows.size)
+    groups = sparse.csr_matrix((v, rows, indptr), shape=(starts.size, X.shape[0]))
     return np.asarray(groups @ X)
