@@ -12,7 +12,7 @@ import datetime as dt
 import hashlib
 import json
 import warnings
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -421,7 +421,3 @@ def fit_reference(
         group_offsets=tuple(float(v) for v in offsets),
     )
 
-
-def with_fit(model: ReferenceModel, fit: CoxFit) -> ReferenceModel:
-    """Return a copy of ``model`` with another Cox fit (bootstrap and influence refits)."""
-    return replace(model, fit=fit)
