@@ -26,7 +26,7 @@ from casemix.design import Design
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning
 from casemix.records import Records
 from casemix.spec import Spec, load_spec, spec_from_dict
-from casemix.survival import BaselineHazard, CoxFit, TestResult, concordance, fit_cox
+from casemix.survival import BaselineHazard, ChiSquareTest, CoxFit, concordance, fit_cox
 
 FORMAT_VERSION = 1
 MODEL_KIND = "casemix reference model"
@@ -262,9 +262,9 @@ def _model(body: dict) -> ReferenceModel:
         n_iter=int(facts["n_iter"]),
         converged=bool(facts["converged"]),
         ties=str(facts["ties"]),
-        wald_test=TestResult(**facts["wald_test"]),
-        score_test=TestResult(**facts["score_test"]),
-        lr_test=TestResult(**facts["lr_test"]),
+        wald_test=ChiSquareTest(**facts["wald_test"]),
+        score_test=ChiSquareTest(**facts["score_test"]),
+        lr_test=ChiSquareTest(**facts["lr_test"]),
         strata_levels=tuple(b["stratum"] for b in baselines),
         baselines=tuple(
             BaselineHazard(
@@ -315,7 +315,7 @@ def _baseline_dict(stratum, baseline: BaselineHazard) -> dict[str, Any]:
     }
 
 
-def _test_dict(test: TestResult) -> dict[str, Any]:
+def _test_dict(test: ChiSquareTest) -> dict[str, Any]:
     return {"statistic": test.statistic, "df": test.df, "p_value": test.p_value}
 
 

@@ -288,7 +288,7 @@ def test_global_tests(name, df, lr, wald, score):
         (fit.wald_test, wald),
         (fit.score_test, score),
     ):
-        assert isinstance(result, survival.TestResult)
+        assert isinstance(result, survival.ChiSquareTest)
         assert result.df == df
         assert result.statistic == pytest.approx(statistic, abs=1e-3)
         # REFERENCE LIBRARY: scipy.stats.chi2 upper tail

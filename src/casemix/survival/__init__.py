@@ -1,15 +1,15 @@
 """Survival numerics: arrays in, frozen dataclasses out (no pandas, no files, no programs)."""
 
 from casemix.survival.concordance import Concordance, concordance
-from casemix.survival.cox import BaselineHazard, CoxFit, TestResult, fit_cox
+from casemix.survival.cox import BaselineHazard, ChiSquareTest, CoxFit, fit_cox
 from casemix.survival.km import KaplanMeier, kaplan_meier
 
 __all__ = [
     "BaselineHazard",
+    "ChiSquareTest",
     "Concordance",
     "CoxFit",
     "KaplanMeier",
-    "TestResult",
     "concordance",
     "fit_cox",
     "kaplan_meier",

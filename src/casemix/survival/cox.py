@@ -39,7 +39,7 @@ DIVERGED_COEF = 20.0
 
 
 @dataclass(frozen=True)
-class TestResult:
+class ChiSquareTest:
     """A chi-square test: statistic, degrees of freedom and p-value."""
 
     statistic: float
@@ -106,7 +106,7 @@ class CoxFit:
     n, n_events, n_iter : int
     converged : bool
     ties : str
-    wald_test, score_test, lr_test : TestResult
+    wald_test, score_test, lr_test : ChiSquareTest
     strata_levels : tuple
         Stratum labels in sorted order; ``(None,)`` when unstratified.
     baselines : tuple of BaselineHazard
@@ -125,9 +125,9 @@ class CoxFit:
     n_iter: int
     converged: bool
     ties: str
-    wald_test: TestResult
-    score_test: TestResult
-    lr_test: TestResult
+    wald_test: ChiSquareTest
+    score_test: ChiSquareTest
+    lr_test: ChiSquareTest
     strata_levels: tuple
     baselines: tuple[BaselineHazard, ...]
 
@@ -334,8 +334,8 @@ def _solve(info: np.ndarray, score: np.ndarray) -> np.ndarray:
     return np.linalg.solve(factor.T, np.linalg.solve(factor, score))
 
 
-def _chi2(statistic: float, df: int) -> TestResult:
-    return TestResult(float(statistic), df, float(stats.chi2.sf(statistic, df)))
+def _chi2(statistic: float, df: int) -> ChiSquareTest:
+    return ChiSquareTest(float(statistic), df, float(stats.chi2.sf(statistic, df)))
 
 
 def _check_information(info: np.ndarray, scale: np.ndarray, names: tuple[str, ...]) -> None:
