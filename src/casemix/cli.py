@@ -121,7 +121,7 @@ def _date(value: str | None, option: str) -> dt.date | None:
         raise typer.Exit(2) from None
 
 
-def _prior(value: str, observed=None, expected=None):
+def _prior(value: str):
     """Parse --prior: 'eb' (mean fixed at 1), 'eb-free' (free mean) or 'fixed:SHAPE,RATE'."""
     from casemix.shrinkage import fixed_prior
 
