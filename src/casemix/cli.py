@@ -285,18 +285,14 @@ def evaluate(
     --cutoff 2025-06-30 --out results
     """
     from casemix.evaluate import evaluate as run_evaluation
-    from casemix.records import read_records
-    from casemix.reference import ReferenceModel
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
     chosen = _prior(prior)
-    with _guarded(), _steps(3 + report) as step:
-        reference = ReferenceModel.load(model)
-        data = read_records(records, reference.spec, cutoff=cut)
+    with _guarded(), _steps(2 + report) as step:
         step("evaluating programs")
         result = run_evaluation(
-            data,
+            records,
             model,
             rules,
             prior=None if chosen == "free" else chosen,

@@ -151,10 +151,10 @@ def _rules(rules) -> Rules:
     return load_rules(rules)
 
 
-def _records(records, model: ReferenceModel) -> Records:
+def _records(records, model: ReferenceModel, cutoff) -> Records:
     if isinstance(records, Records):
         return records
-    return read_records(records, model.spec)
+    return read_records(records, model.spec, cutoff=cutoff)
 
 
 def evaluate(
@@ -172,7 +172,7 @@ def evaluate(
     Parameters
     ----------
     cohort_records : Records or path
-        The evaluation cohort's records (a path is read with the model's spec).
+        The evaluation cohort's records (a path is read with the model's spec and ``cutoff``).
     model : ReferenceModel or path
         The reference model; its outcome and horizon are used.
     rules : Rules or path, optional
@@ -190,7 +190,7 @@ def evaluate(
     if not isinstance(model, ReferenceModel):
         model_path = Path(model)
         model = ReferenceModel.load(model_path)
-    records = _records(cohort_records, model)
+    records = _records(cohort_records, model, cutoff)
     rules = _rules(rules)
     if cutoff is None:
         cutoff = records.cutoff

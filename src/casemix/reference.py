@@ -340,8 +340,6 @@ def _as_date(value, what: str) -> dt.date:
         return value.date()
     if isinstance(value, dt.date):
         return value
-    if hasattr(value, "date"):  # pandas Timestamp
-        return value.date()
     try:
         return dt.date.fromisoformat(str(value))
     except ValueError as exc:

@@ -16,8 +16,8 @@ from casemix.report.plots import (
     funnel_figure,
     numbers_at_risk,
     survival_figure,
-    verdict_palette,
 )
+from casemix.verdict import verdict_colours
 
 # REFERENCE_CHECKS.md section 8: PUBLISHED method (Spiegelhalter 2005, from memory), numbers
 # REFERENCE LIBRARY scipy.stats.poisson ppf/cdf; tolerance abs 5e-5.
@@ -127,8 +127,8 @@ def test_casemix_bars_span_from_one_to_the_factor_on_a_log_axis():
     assert [t.get_text() for t in ax.get_yticklabels()][-1] == "all groups together"
 
 
-def test_verdict_palette_has_a_distinct_colour_for_every_verdict():
-    palette = verdict_palette()
+def test_verdict_colours_have_a_distinct_colour_for_every_verdict():
+    palette = verdict_colours()
     assert set(palette) == set(VERDICT_WORDS)
     assert len(set(palette.values())) == 4
     # Okabe-Ito hues fixed by the design (DESIGN.md, Names): blue, grey, vermillion.

@@ -29,7 +29,6 @@ __all__ = [
     "funnel_figure",
     "numbers_at_risk",
     "survival_figure",
-    "verdict_palette",
 ]
 
 VERDICT_WORDS = {
@@ -62,11 +61,6 @@ _STYLE = {
     "grid.color": "#e3e6e8",
     "grid.linewidth": 0.6,
 }
-
-
-def verdict_palette() -> dict[str, str]:
-    """Return the colour (hex) of each verdict: ``casemix.verdict.verdict_colours()``."""
-    return verdict_colours()
 
 
 def _figure(width: float, height: float) -> Figure:
@@ -133,7 +127,7 @@ def funnel_figure(
     data = programs[programs["expected"] > 0]
     expected = data["expected"].to_numpy(float)
     ratio = data["oe_ratio"].to_numpy(float)
-    palette = verdict_palette()
+    palette = verdict_colours()
     fig = _figure(6.4, 4.1)
     ax = fig.add_subplot()
     grid = _funnel_grid(expected, log_expected)
@@ -202,7 +196,7 @@ def caterpillar_figure(
         Two panels with a shared axis of program codes and a shared ratio scale.
     """
     data = programs.sort_values(["hr_mean", "program"], kind="stable")
-    palette = verdict_palette()
+    palette = verdict_colours()
     colours = [palette[v] for v in data["verdict"]]
     y = np.arange(len(data))[::-1]
     edge = min(float(np.nanmax(np.r_[data["hr_upper"], data["oe_upper"], 1.5])), max_ratio)

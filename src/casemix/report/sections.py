@@ -27,10 +27,10 @@ from casemix.report.plots import (
     funnel_figure,
     numbers_at_risk,
     survival_figure,
-    verdict_palette,
 )
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts, suppress_value
+from casemix.verdict import verdict_colours
 
 __all__ = [
     "ReportOptions",
@@ -102,7 +102,7 @@ def program_anchor(position: int, code: str) -> str:
 
 def verdict_html(verdict: str, palette: dict[str, str] | None = None) -> Markup:
     """Return a verdict as its word with a colour chip beside it."""
-    palette = palette or verdict_palette()
+    palette = palette or verdict_colours()
     return Markup('<span class="verdict"><span class="chip" style="background:{}"></span>{}'
                   "</span>").format(palette[verdict], VERDICT_WORDS[verdict])
 
@@ -198,7 +198,7 @@ def _survival_cell(row: pd.Series, column: str) -> str:
 
 
 def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFrame:
-    programs, palette = data.programs, verdict_palette()
+    programs, palette = data.programs, verdict_colours()
     return pd.DataFrame({
         "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
                     for i, code in enumerate(programs["program"])],
@@ -362,7 +362,7 @@ def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
 
 def each_program_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     """One sub-section per program (by code): survival curves, case mix, what-if distances."""
-    palette = verdict_palette()
+    palette = verdict_colours()
     codes = data.programs["program"]
     index = Markup('<ul class="program-index">{}</ul>').format(Markup("").join(
         Markup('<li><a href="#{}">{}</a></li>').format(program_anchor(i, c), c)
