@@ -18,10 +18,10 @@ from pathlib import Path
 import numpy as np
 
 from casemix.audit import concordance, ph_test, run_audit
+from casemix.data.records import read_records
+from casemix.data.spec import load_spec
 from casemix.demo import COHORT_CUTOFF, REFERENCE_CUTOFF, REFERENCE_WINDOW, write_demo
-from casemix.records import read_records
-from casemix.reference import fit_reference
-from casemix.spec import load_spec
+from casemix.model.reference import fit_reference
 from casemix.survival import fit_cox
 
 N_ROWS = 1_000_000

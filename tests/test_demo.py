@@ -19,8 +19,8 @@ import pytest
 from lifelines import CoxPHFitter, KaplanMeierFitter
 
 from casemix import demo
+from casemix.data.spec import load_spec
 from casemix.errors import InputError
-from casemix.spec import load_spec
 
 if sys.version_info >= (3, 11):
     import tomllib

@@ -7,7 +7,7 @@ The stages, in the order data flow through them::
     model = casemix.fit_reference(reference, spec, "graft_failure", 365, "2022-12-31")
     model.save("model.json")
     cohort = casemix.read_records("cohort.csv", spec, cutoff="2025-06-30")
-    result = casemix.evaluate(cohort, model, rules="rules.toml")
+    result = casemix.evaluation.evaluate(cohort, model, rules="rules.toml")
     result.save("results")
 """
 
@@ -18,14 +18,14 @@ try:
 except PackageNotFoundError:  # running from a source tree that was not installed
     __version__ = "0.0.0+unknown"
 
-from casemix.cohort import Cohort, build_cohort
-from casemix.design import Design
-from casemix.evaluate import Evaluation, evaluate
-from casemix.records import Records, read_records
-from casemix.reference import ReferenceModel, fit_reference
-from casemix.shrinkage import Prior, empirical_bayes_prior, fixed_prior
-from casemix.spec import Spec, load_spec
-from casemix.verdict import Rules, load_rules
+from casemix.data.cohort import Cohort, build_cohort
+from casemix.data.design import Design
+from casemix.data.records import Records, read_records
+from casemix.data.spec import Spec, load_spec
+from casemix.evaluation.evaluate import Evaluation, evaluate
+from casemix.model.reference import ReferenceModel, fit_reference
+from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior
+from casemix.stats.verdict import Rules, load_rules
 
 __all__ = [
     "Cohort",

@@ -123,7 +123,7 @@ def _date(value: str | None, option: str) -> dt.date | None:
 
 def _prior(value: str):
     """Parse --prior: 'eb' (mean fixed at 1), 'eb-free' (free mean) or 'fixed:SHAPE,RATE'."""
-    from casemix.shrinkage import fixed_prior
+    from casemix.stats.shrinkage import fixed_prior
 
     if value == "eb":
         return None
@@ -175,7 +175,7 @@ def check(
 
     Example: casemix check cohort.csv --spec spec.toml --cutoff 2025-06-30
     """
-    from casemix.records import read_records
+    from casemix.data.records import read_records
 
     with _guarded():
         result = read_records(records, spec, cutoff=_date(cutoff, "--cutoff"))
@@ -238,8 +238,8 @@ def fit(
     Example: casemix fit reference.csv --spec spec.toml --outcome graft_failure
     --horizon 365 --cutoff 2022-12-31 --out model.json
     """
-    from casemix.records import read_records
-    from casemix.reference import fit_reference
+    from casemix.data.records import read_records
+    from casemix.model.reference import fit_reference
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
@@ -284,7 +284,7 @@ def evaluate(
     Example: casemix evaluate cohort.csv --model model.json --rules rules.toml
     --cutoff 2025-06-30 --out results
     """
-    from casemix.evaluate import evaluate as run_evaluation
+    from casemix.evaluation.evaluate import evaluate as run_evaluation
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
@@ -408,8 +408,8 @@ def audit(
     --cutoff 2025-06-30 --out audit
     """
     from casemix.audit import run_audit
-    from casemix.records import read_records
-    from casemix.reference import ReferenceModel
+    from casemix.data.records import read_records
+    from casemix.model.reference import ReferenceModel
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
@@ -450,9 +450,9 @@ def demo(
     Example: casemix demo --out demo_out
     """
     from casemix import demo as scenario
-    from casemix.evaluate import evaluate as run_evaluation
-    from casemix.records import read_records
-    from casemix.reference import fit_reference
+    from casemix.data.records import read_records
+    from casemix.evaluation.evaluate import evaluate as run_evaluation
+    from casemix.model.reference import fit_reference
 
     with _guarded(), _steps(5) as step:
         paths = scenario.write_demo(out_dir, seed=seed)

@@ -18,7 +18,7 @@ from casemix.audit import (
     parallel_map,
 )
 from casemix.errors import ConvergenceError, InputError
-from casemix.shrinkage import fixed_prior
+from casemix.stats.shrinkage import fixed_prior
 from casemix.survival import fit_cox
 
 # REFERENCE_CHECKS.md section 5, model B: reference = rossi fin = 0, cohort = fin = 1.

@@ -10,6 +10,8 @@ import numpy as np
 import pytest
 
 from casemix.audit import run_audit
+from casemix.data.records import read_records
+from casemix.data.spec import load_spec
 from casemix.demo import (
     COHORT_CUTOFF,
     REFERENCE_CUTOFF,
@@ -17,9 +19,7 @@ from casemix.demo import (
     generate,
 )
 from casemix.errors import InputError
-from casemix.records import read_records
-from casemix.reference import fit_reference
-from casemix.spec import load_spec
+from casemix.model.reference import fit_reference
 
 
 @pytest.fixture(scope="module")

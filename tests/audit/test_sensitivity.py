@@ -8,7 +8,7 @@ import pytest
 from scipy import stats
 
 from casemix.audit import prior_sensitivity, verdict_changes
-from casemix.shrinkage import fixed_prior
+from casemix.stats.shrinkage import fixed_prior
 
 # REFERENCE_CHECKS.md section 7: the invented 8-unit table used for empirical Bayes.
 PROGRAMS = pd.DataFrame(

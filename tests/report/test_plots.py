@@ -17,7 +17,7 @@ from casemix.report.plots import (
     numbers_at_risk,
     survival_figure,
 )
-from casemix.verdict import verdict_colours
+from casemix.stats.verdict import verdict_colours
 
 # REFERENCE_CHECKS.md section 8: PUBLISHED method (Spiegelhalter 2005, from memory), numbers
 # REFERENCE LIBRARY scipy.stats.poisson ppf/cdf; tolerance abs 5e-5.

@@ -17,12 +17,12 @@ from casemix.audit.calibration import (
     calibration_regression,
 )
 from casemix.audit.crosscheck import crosscheck_lifelines, crosscheck_statsmodels
-from casemix.audit.dispersion import Overdispersion, adjusted_funnel_limits, overdispersion
 from casemix.audit.influence import leave_one_program_out
-from casemix.audit.multiplicity import bh_q_values, fdr_table
 from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals, time_transform
 from casemix.audit.run import Audit, run_audit
 from casemix.audit.sensitivity import PRIOR_SHAPES, prior_sensitivity, verdict_changes
+from casemix.stats.dispersion import Overdispersion, adjusted_funnel_limits, overdispersion
+from casemix.stats.multiplicity import bh_q_values, fdr_table
 from casemix.survival import Concordance, concordance
 
 __all__ = [

@@ -30,7 +30,7 @@ import pandas as pd
 from scipy import optimize, stats
 
 from casemix.errors import ConvergenceError, ConvergenceWarning, InputError
-from casemix.poisson import check_level
+from casemix.stats.poisson import check_level
 from casemix.survival import fit_cox
 
 __all__ = [

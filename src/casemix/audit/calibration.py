@@ -15,7 +15,7 @@ from scipy import stats
 
 from casemix.audit._optional import require
 from casemix.errors import InputError, plural
-from casemix.poisson import as_observed_expected, check_level, oe_interval
+from casemix.stats.poisson import as_observed_expected, check_level, oe_interval
 
 __all__ = [
     "calibration_by_group",

@@ -27,18 +27,18 @@ from casemix.audit.calibration import (
     calibration_regression,
 )
 from casemix.audit.crosscheck import crosscheck_lifelines, crosscheck_statsmodels
-from casemix.audit.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
 from casemix.audit.findings import THRESHOLDS, all_findings
 from casemix.audit.influence import leave_one_program_out
-from casemix.audit.multiplicity import fdr_table
-from casemix.audit.page import audit_html
 from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
-from casemix.cohort import build_cohort
+from casemix.data.cohort import build_cohort
+from casemix.data.records import Records, read_records
 from casemix.errors import InputError
-from casemix.evaluate import evaluate
-from casemix.records import Records, read_records
-from casemix.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.evaluation.evaluate import evaluate
+from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.report.audit_page import audit_html
+from casemix.stats.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
+from casemix.stats.multiplicity import fdr_table
 from casemix.survival import concordance
 
 __all__ = ["HORIZONS", "Audit", "run_audit"]
@@ -291,7 +291,7 @@ def run_audit(
     progress : bool, default False
         Show a progress bar on a terminal.
     cutoff, window : optional
-        The cohort's cut-off and transplant-date window, as for :func:`casemix.evaluate`.
+        The cohort's cut-off and transplant-date window, as for :func:`casemix.evaluation.evaluate`.
 
     Returns
     -------

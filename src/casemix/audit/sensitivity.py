@@ -13,8 +13,8 @@ import numpy as np
 import pandas as pd
 
 from casemix.errors import PriorWarning
-from casemix.shrinkage import Prior, empirical_bayes_prior, fixed_prior, posterior
-from casemix.verdict import Rules, assign_verdicts
+from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior, posterior
+from casemix.stats.verdict import Rules, assign_verdicts
 
 __all__ = ["PRIOR_SHAPES", "changed_programs", "prior_sensitivity", "verdict_changes"]
 

@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 
 from casemix.errors import InputError, plural
-from casemix.verdict import VERDICTS
+from casemix.stats.verdict import VERDICTS
 
 __all__ = ["EvaluationFolder", "read_evaluation_folder"]
 

@@ -17,8 +17,8 @@ import pandas as pd
 from matplotlib.figure import Figure
 from matplotlib.ticker import FixedLocator, MaxNLocator, NullLocator
 
-from casemix.poisson import funnel_limits
-from casemix.verdict import verdict_colours
+from casemix.stats.poisson import funnel_limits
+from casemix.stats.verdict import verdict_colours
 
 __all__ = [
     "FUNNEL_LEVELS",
@@ -112,7 +112,7 @@ def funnel_figure(
         Columns ``program``, ``expected``, ``oe_ratio``, ``verdict``; rows with E = 0 are
         not drawn (the caller says so).
     levels : sequence of float, default (0.95, 0.998)
-        Coverage of the limits (:func:`casemix.poisson.funnel_limits`); the lines have
+        Coverage of the limits (:func:`casemix.stats.poisson.funnel_limits`); the lines have
         ``gid`` ``"limit-<level>-lower"`` and ``"limit-<level>-upper"``.
     log_expected : bool, default False
         Logarithmic E axis (useful when program sizes span orders of magnitude).

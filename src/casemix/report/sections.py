@@ -30,7 +30,7 @@ from casemix.report.plots import (
 )
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts, suppress_value
-from casemix.verdict import verdict_colours
+from casemix.stats.verdict import verdict_colours
 
 __all__ = [
     "ReportOptions",

@@ -17,9 +17,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from casemix import read_records
+from casemix.data.records import format_rows, to_timestamp
+from casemix.data.spec import spec_from_dict
 from casemix.errors import InputError
-from casemix.records import format_rows, to_timestamp
-from casemix.spec import spec_from_dict
 
 HEADER = [
     "recipient_id",

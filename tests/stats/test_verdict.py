@@ -8,8 +8,8 @@ import pytest
 from scipy import stats
 
 from casemix.errors import RulesError
-from casemix.shrinkage import fixed_prior
-from casemix.verdict import (
+from casemix.stats.shrinkage import fixed_prior
+from casemix.stats.verdict import (
     VERDICTS,
     Rules,
     assign_verdicts,

@@ -31,7 +31,7 @@ from casemix import (
     read_records,
 )
 from casemix.errors import InputError, PriorWarning
-from casemix.evaluate import PROGRAM_COLUMNS
+from casemix.evaluation.evaluate import PROGRAM_COLUMNS
 
 # DESIGN.md, "programs.csv columns, in this order".
 DESIGN_COLUMNS = [

@@ -21,11 +21,11 @@ from scipy.special import logsumexp
 
 import casemix
 from casemix._io import write_json
-from casemix.cohort import Cohort, build_cohort
-from casemix.design import Design
+from casemix.data.cohort import Cohort, build_cohort
+from casemix.data.design import Design
+from casemix.data.records import Records
+from casemix.data.spec import Spec, load_spec, spec_from_dict
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning
-from casemix.records import Records
-from casemix.spec import Spec, load_spec, spec_from_dict
 from casemix.survival import BaselineHazard, ChiSquareTest, CoxFit, concordance, fit_cox
 
 FORMAT_VERSION = 1
@@ -114,7 +114,8 @@ class ReferenceModel:
     group_offsets : tuple of float
         Per covariate group (in the order of first appearance in ``design.groups``), the
         log-mean-exp of the group's log relative risk over the reference population: where the
-        reference population's average recipient stands on the risk scale (see casemix.explain).
+        reference population's average recipient stands on the risk scale
+        (see casemix.evaluation.explain).
     """
 
     spec: Spec

@@ -14,7 +14,7 @@ Columns, per covariate in spec order:
   sorted order;
 * spline: a natural (restricted) cubic spline basis, ``name:spline1`` = the value itself, then
   ``name:spline2`` ... ``name:spline{K-1}`` for K knots placed at the reference-population
-  quantiles :data:`casemix.spec.SPLINE_KNOT_QUANTILES` (``numpy.quantile``, linear
+  quantiles :data:`casemix.data.spec.SPLINE_KNOT_QUANTILES` (``numpy.quantile``, linear
   interpolation). With ``c(u) = max(u, 0)^3``, non-linear column j = 1..K-2 is
   ``[c(x-t_j) - c(x-t_{K-1}) (t_K-t_j)/(t_K-t_{K-1}) + c(x-t_K) (t_{K-1}-t_j)/(t_K-t_{K-1})]
   / (t_K-t_1)^2``: cubic between the knots, linear beyond the outer ones, and divided by the
@@ -38,9 +38,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from casemix.data.records import clean_text, format_rows
+from casemix.data.spec import SPLINE_KNOT_QUANTILES, Covariate, Spec, closest
 from casemix.errors import InputError, ModelFileError, SpecError
-from casemix.records import clean_text, format_rows
-from casemix.spec import SPLINE_KNOT_QUANTILES, Covariate, Spec, closest
 
 __all__ = ["FORMAT_VERSION", "MISSING_LEVEL", "Design", "Term", "natural_spline_basis"]
 
@@ -85,7 +85,7 @@ class Term:
     Attributes
     ----------
     name, column, kind, missing : str
-        As in the spec's :class:`~casemix.spec.Covariate`.
+        As in the spec's :class:`~casemix.data.spec.Covariate`.
     levels : tuple of str
         Categorical only: the reference level first, then the other levels sorted.
     other : str or None
@@ -213,7 +213,7 @@ class Design:
         Parameters
         ----------
         frame : pandas.DataFrame, or Records / Cohort (their ``.frame`` is used)
-            The reference population, covariates as :func:`~casemix.records.read_records`
+            The reference population, covariates as :func:`~casemix.data.records.read_records`
             leaves them.
         spec : Spec
 

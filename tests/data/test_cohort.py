@@ -15,8 +15,8 @@ from lifelines.datasets import load_leukemia, load_lung
 from lifelines.utils import datetimes_to_durations
 
 from casemix import Records, build_cohort, read_records
+from casemix.data.spec import spec_from_dict
 from casemix.errors import InputError, SpecError
-from casemix.spec import spec_from_dict
 
 SPEC_DICT = {
     "columns": {

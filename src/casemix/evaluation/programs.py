@@ -10,9 +10,9 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from casemix.expected import ExpectedEvents
-from casemix.poisson import exact_p_values, oe_interval
-from casemix.reference import ReferenceModel
+from casemix.evaluation.expected import ExpectedEvents
+from casemix.model.reference import ReferenceModel
+from casemix.stats.poisson import exact_p_values, oe_interval
 from casemix.survival import kaplan_meier
 
 MAX_CURVE_POINTS = 400

@@ -19,9 +19,9 @@ from scipy import integrate
 from scipy.special import logsumexp
 
 from casemix import build_cohort, fit_reference, load_spec, read_records
-from casemix.expected import expected_events
-from casemix.explain import TOTAL, casemix_contributions
-from casemix.programs import program_table
+from casemix.evaluation.expected import expected_events
+from casemix.evaluation.explain import TOTAL, casemix_contributions
+from casemix.evaluation.programs import program_table
 
 # All of model A's covariates as plain numbers, so that a recipient can sit exactly at the
 # reference means (a binary covariate cannot be 0.28).

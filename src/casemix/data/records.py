@@ -24,8 +24,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from casemix.data.spec import Covariate, Spec, closest, load_spec
 from casemix.errors import InputError, plural
-from casemix.spec import Covariate, Spec, closest, load_spec
 
 __all__ = [
     "WARNING_KINDS",

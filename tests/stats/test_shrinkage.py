@@ -12,7 +12,7 @@ import statsmodels.api as sm
 from scipy import optimize, stats
 
 from casemix.errors import InputError, PriorWarning
-from casemix.shrinkage import (
+from casemix.stats.shrinkage import (
     Prior,
     empirical_bayes_prior,
     fixed_prior,

@@ -16,7 +16,7 @@ import rossi_records as rr
 
 from casemix import build_cohort, fit_reference, load_spec, read_records
 from casemix.errors import DataWarning, InputError
-from casemix.expected import expected_events
+from casemix.evaluation.expected import expected_events
 
 
 @pytest.fixture(scope="module")

@@ -25,8 +25,8 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from casemix.expected import ExpectedEvents
-from casemix.reference import ReferenceModel, group_terms
+from casemix.evaluation.expected import ExpectedEvents
+from casemix.model.reference import ReferenceModel, group_terms
 
 QUADRATURE_NODES = 32
 TOTAL = "total"

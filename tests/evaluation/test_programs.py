@@ -17,8 +17,8 @@ from lifelines import KaplanMeierFitter
 from scipy import stats
 
 from casemix import build_cohort, fit_reference, load_spec, read_records
-from casemix.expected import expected_events
-from casemix.programs import MAX_CURVE_POINTS, program_table, survival_curves
+from casemix.evaluation.expected import expected_events
+from casemix.evaluation.programs import MAX_CURVE_POINTS, program_table, survival_curves
 
 TABLE_COLUMNS = [
     "program", "recipients", "observed", "expected", "oe_ratio", "oe_lower", "oe_upper",

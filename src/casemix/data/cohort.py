@@ -29,8 +29,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
-from casemix.records import Records, to_timestamp
 
 __all__ = ["Cohort", "build_cohort", "follow_up"]
 

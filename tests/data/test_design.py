@@ -12,9 +12,9 @@ import pytest
 from lifelines.datasets import load_rossi
 
 from casemix import Design
-from casemix.design import natural_spline_basis
+from casemix.data.design import natural_spline_basis
+from casemix.data.spec import spec_from_dict
 from casemix.errors import InputError, ModelFileError, SpecError
-from casemix.spec import spec_from_dict
 
 COLUMNS = {
     "recipient": "recipient_id", "program": "program",

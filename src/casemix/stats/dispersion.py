@@ -23,7 +23,7 @@ import numpy as np
 from scipy import stats
 
 from casemix.errors import InputError
-from casemix.poisson import as_observed_expected, check_level
+from casemix.stats.poisson import as_observed_expected, check_level
 
 __all__ = ["ADJUSTMENTS", "Overdispersion", "adjusted_funnel_limits", "overdispersion"]
 

@@ -12,10 +12,10 @@ from pathlib import Path
 import pytest
 
 from casemix import load_spec
+from casemix.data.spec import SPLINE_KNOT_QUANTILES, Covariate, spec_from_dict
 from casemix.errors import SpecError
-from casemix.spec import SPLINE_KNOT_QUANTILES, Covariate, spec_from_dict
 
-DOCS = Path(__file__).resolve().parents[1] / "docs" / "spec.md"
+DOCS = Path(__file__).resolve().parents[2] / "docs" / "spec.md"
 
 MINIMAL = {
     "columns": {

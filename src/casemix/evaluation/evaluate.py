@@ -16,15 +16,15 @@ from scipy import stats
 
 import casemix
 from casemix._io import sha256_file, write_csv, write_json
-from casemix.cohort import build_cohort
+from casemix.data.cohort import build_cohort
+from casemix.data.records import Records, read_records
 from casemix.errors import InputError
-from casemix.expected import expected_events
-from casemix.explain import casemix_contributions
-from casemix.programs import program_table, survival_curves
-from casemix.records import Records, read_records
-from casemix.reference import FORMAT_VERSION, ReferenceModel, resolve_analysis
-from casemix.shrinkage import Prior, empirical_bayes_prior, posterior
-from casemix.verdict import Rules, assign_verdicts, load_rules
+from casemix.evaluation.expected import expected_events
+from casemix.evaluation.explain import casemix_contributions
+from casemix.evaluation.programs import program_table, survival_curves
+from casemix.model.reference import FORMAT_VERSION, ReferenceModel, resolve_analysis
+from casemix.stats.shrinkage import Prior, empirical_bayes_prior, posterior
+from casemix.stats.verdict import Rules, assign_verdicts, load_rules
 
 PROGRAM_COLUMNS = [
     "program",
@@ -80,7 +80,7 @@ class Evaluation:
     followup : DataFrame
         Per program: follow-up completeness and lost to follow-up.
     casemix : DataFrame
-        Case-mix contributions per program and covariate group (see casemix.explain).
+        Case-mix contributions per program and covariate group (see casemix.evaluation.explain).
     curves : DataFrame
         Observed and expected survival per program on a grid of days.
     coefficients : DataFrame

@@ -17,7 +17,7 @@ import rossi_records as rr
 import casemix
 from casemix import ReferenceModel, build_cohort, fit_reference, load_spec, read_records
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning, SpecError
-from casemix.reference import FORMAT_VERSION, reference_data
+from casemix.model.reference import FORMAT_VERSION, reference_data
 
 # REFERENCE_CHECKS.md section 3.1, Efron: PUBLISHED (from memory; verified) Fox & Weisberg,
 # appendix to An R Companion to Applied Regression; REFERENCE LIBRARY lifelines,
@@ -266,7 +266,7 @@ def test_round_trip_gives_identical_expected_events(saved, full_model, full_reco
 
 
 def test_round_trip_keeps_the_spec_and_its_covariate_order(saved, full_model):
-    # The spec's covariate order is the design's column order (casemix.spec.Spec): a loaded
+    # The spec's covariate order is the design's column order (casemix.data.spec.Spec): a loaded
     # model must give back the spec it was fitted with, so that a refit on loaded.spec
     # builds the same design.
     loaded = ReferenceModel.load(saved)

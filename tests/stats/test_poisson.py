@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from casemix.errors import InputError
-from casemix.poisson import (
+from casemix.stats.poisson import (
     as_observed_expected,
     exact_p_values,
     funnel_limits,

@@ -12,7 +12,7 @@ import numpy as np
 import pandas as pd
 
 from casemix.errors import InputError
-from casemix.poisson import as_observed_expected, check_level, exact_p_values
+from casemix.stats.poisson import as_observed_expected, check_level, exact_p_values
 
 __all__ = ["bh_q_values", "fdr_table"]
 

@@ -27,7 +27,7 @@ import pandas as pd
 from scipy import optimize, special, stats
 
 from casemix.errors import InputError, PriorWarning
-from casemix.poisson import as_observed_expected, check_level
+from casemix.stats.poisson import as_observed_expected, check_level
 
 __all__ = [
     "PRIOR_METHODS",

@@ -1,7 +1,7 @@
 """Verdict rules (``rules.toml``), one verdict per program, and how far each is from changing.
 
 A program's verdict comes from the gamma posterior of its hazard ratio (see
-`casemix.shrinkage.posterior`):
+`casemix.stats.shrinkage.posterior`):
 
 - ``too_little_data`` when E < ``min_expected``;
 - ``excess`` when P(HR > ``upper_margin``) >= ``probability``;
@@ -29,8 +29,8 @@ import pandas as pd
 from scipy import stats
 
 from casemix.errors import RulesError
-from casemix.poisson import as_observed_expected
-from casemix.shrinkage import Prior, posterior
+from casemix.stats.poisson import as_observed_expected
+from casemix.stats.shrinkage import Prior, posterior
 
 if sys.version_info >= (3, 11):
     import tomllib

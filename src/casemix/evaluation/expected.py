@@ -13,9 +13,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from casemix.cohort import Cohort
+from casemix.data.cohort import Cohort
 from casemix.errors import DataWarning, InputError, plural
-from casemix.reference import ReferenceModel
+from casemix.model.reference import ReferenceModel
 
 
 @dataclass(frozen=True)
