@@ -51,10 +51,10 @@ from casemix.stats.shrinkage import Prior
 
 __all__ = [
     "DISTRIBUTIONS",
-    "HyperDensity",
-    "Hyperprior",
     "TAU_MAX",
     "TAU_MIN",
+    "HyperDensity",
+    "Hyperprior",
     "hierarchical_prior",
     "hyperprior_from_dict",
 ]
@@ -208,8 +208,10 @@ def hyperprior_from_dict(values: Mapping[str, Any], *, source: str = "rules") ->
             continue
         table = values[given[0]]
         if not isinstance(table, Mapping) or "distribution" not in table:
-            raise InputError(f"{source}: [prior.hyperprior] {given[0]} must be a table with a "
-                             "distribution key, e.g. {distribution = \"halfcauchy\", scale = 0.25}.")
+            raise InputError(
+                f"{source}: [prior.hyperprior] {given[0]} must be a table with a distribution "
+                'key, e.g. {distribution = "halfcauchy", scale = 0.25}.'
+            )
         params = tuple(sorted((k, v) for k, v in table.items() if k != "distribution"))
         try:
             chosen[group] = HyperDensity(given[0], str(table["distribution"]), params)
