@@ -47,16 +47,19 @@ from scipy import special, stats
 
 from casemix.errors import InputError
 from casemix.stats.poisson import as_observed_expected
-from casemix.stats.shrinkage import Prior
+from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior
 
 __all__ = [
     "DISTRIBUTIONS",
+    "PRIOR_CHOICES",
     "TAU_MAX",
     "TAU_MIN",
     "HyperDensity",
     "Hyperprior",
+    "PriorSettings",
     "hierarchical_prior",
     "hyperprior_from_dict",
+    "prior_settings_from_dict",
 ]
 
 TAU_MIN, TAU_MAX = 1e-4, 100.0
@@ -424,3 +427,79 @@ def hierarchical_prior(
         components=tuple(zip(a.tolist(), b.tolist(), w.tolist(), strict=True)),
         hyperprior=summary,
     )
+
+
+PRIOR_CHOICES = ("hierarchical", "empirical_bayes", "fixed")
+
+
+@dataclass(frozen=True)
+class PriorSettings:
+    """How the programs' prior is chosen (the ``[prior]`` table of the rules file).
+
+    Attributes
+    ----------
+    method : {"hierarchical", "empirical_bayes", "fixed"}, default "hierarchical"
+        Integrate over a hyperprior (default), plug-in empirical Bayes (for comparison; it
+        falls back to Gamma(2, 2) at the boundary), or the fixed Gamma(shape, rate).
+    free_mean : bool, default False
+        Estimate (integrate over) the prior mean instead of holding it at 1.
+    shape, rate : float, default 2.0
+        The fixed prior's parameters (method "fixed" only).
+    hyperprior : Hyperprior
+        For method "hierarchical".
+    """
+
+    method: str = "hierarchical"
+    free_mean: bool = False
+    shape: float = 2.0
+    rate: float = 2.0
+    hyperprior: Hyperprior = field(default_factory=Hyperprior)
+
+    def __post_init__(self) -> None:
+        if self.method not in PRIOR_CHOICES:
+            raise InputError(f"[prior] method must be one of {', '.join(PRIOR_CHOICES)}; got "
+                             f"{self.method!r}.")
+        if not isinstance(self.free_mean, bool):
+            raise InputError(f"[prior] free_mean must be true or false; got {self.free_mean!r}.")
+        for key in ("shape", "rate"):
+            value = getattr(self, key)
+            ok = isinstance(value, (int, float)) and not isinstance(value, bool)
+            if not ok or not math.isfinite(value) or value <= 0:
+                raise InputError(f"[prior] {key} must be a finite number > 0; got {value!r}.")
+
+    def choose(self, observed: Any, expected: Any) -> Prior:
+        """The prior these settings give for the programs' counts."""
+        if self.method == "fixed":
+            return fixed_prior(self.shape, self.rate)
+        if self.method == "empirical_bayes":
+            return empirical_bayes_prior(observed, expected, free_mean=self.free_mean)
+        return hierarchical_prior(observed, expected, free_mean=self.free_mean,
+                                  hyperprior=self.hyperprior)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The ``[prior]`` table's content."""
+        return {"method": self.method, "free_mean": self.free_mean, "shape": float(self.shape),
+                "rate": float(self.rate), "hyperprior": self.hyperprior.to_dict()}
+
+
+def prior_settings_from_dict(values: Mapping[str, Any], *, source: str = "rules") -> PriorSettings:
+    """Build PriorSettings from a ``[prior]`` table; keys left out take the defaults.
+
+    Raises
+    ------
+    InputError
+        Unknown keys or invalid values; the message names `source` and the key.
+    """
+    if not isinstance(values, Mapping):
+        raise InputError(f"{source}: [prior] must be a table of keys, got {values!r}.")
+    allowed = ("method", "free_mean", "shape", "rate", "hyperprior")
+    unknown = sorted(set(values) - set(allowed))
+    if unknown:
+        raise InputError(f"{source}: unknown key(s) in [prior]: {', '.join(unknown)}. Allowed "
+                         f"keys: {', '.join(allowed)}.")
+    given = {k: v for k, v in values.items() if k != "hyperprior"}
+    hyper = hyperprior_from_dict(values.get("hyperprior", {}), source=source)
+    try:
+        return PriorSettings(**given, hyperprior=hyper)
+    except InputError as exc:
+        raise InputError(f"{source}: {exc}") from None
