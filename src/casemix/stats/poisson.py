@@ -21,6 +21,7 @@ __all__ = [
     "exact_p_values",
     "funnel_limits",
     "garwood_interval",
+    "network_oe",
     "oe_interval",
 ]
 
@@ -234,3 +235,34 @@ def funnel_limits(expected: Any, level: float = 0.95) -> tuple[np.ndarray, np.nd
     lower = np.maximum(_interpolated_quantile(tail, values) / values, 0.0)
     upper = _interpolated_quantile(1.0 - tail, values) / values
     return lower, upper
+
+
+def network_oe(observed: Any, expected: Any, level: float = 0.95) -> dict[str, float]:
+    """The network's overall O/E with its exact interval and an exact test of HR = 1.
+
+    Parameters
+    ----------
+    observed, expected : array_like, shape (n,)
+        Per program; summed over the network.
+    level : float, default 0.95
+
+    Returns
+    -------
+    dict
+        ``observed``, ``expected``, ``oe``, ``oe_lower``, ``oe_upper`` (Garwood limits of the
+        total over the total E) and ``p_value``: the two-sided exact Poisson p-value of the
+        total against the total E, min(1, 2 min(P(Y >= O), P(Y <= O))) (the doubled
+        one-sided test, common practice).
+    """
+    counts, values = as_observed_expected(observed, expected)
+    total_o, total_e = float(counts.sum()), float(values.sum())
+    lower, upper = oe_interval([total_o], [total_e], level)
+    p_more, p_fewer = exact_p_values([total_o], [total_e])
+    return {
+        "observed": int(total_o),
+        "expected": total_e,
+        "oe": total_o / total_e if total_e > 0 else float("nan"),
+        "oe_lower": float(lower[0]),
+        "oe_upper": float(upper[0]),
+        "p_value": float(min(1.0, 2.0 * min(p_more[0], p_fewer[0]))),
+    }
