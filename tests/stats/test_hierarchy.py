@@ -47,8 +47,8 @@ def test_pumps_reproduces_the_published_posterior_means():
     # rates, so the tolerances are 0.01 and 1.5%).
     prior = hierarchical_prior(PUMP_O, PUMP_T, free_mean=True, hyperprior=PUMP_HYPER)
     assert prior.method == "hierarchical"
-    assert prior.shape == pytest.approx(0.70, abs=0.01)
-    assert prior.rate == pytest.approx(0.93, abs=0.01)
+    assert prior.hyperprior["posterior_shape_mean"] == pytest.approx(0.70, abs=0.01)
+    assert prior.hyperprior["posterior_rate_mean"] == pytest.approx(0.93, abs=0.01)
     means = posterior(PUMP_O, PUMP_T, prior)["hr_mean"].to_numpy()
     published = [0.060, 0.102, 0.089, 0.116, 0.60, 0.61, 0.89, 0.89, 1.59, 1.99]
     np.testing.assert_allclose(means, published, rtol=0.015)
@@ -77,8 +77,11 @@ def test_pumps_quadrature_matches_brute_force_integration():
     alpha, beta, theta, tail = _brute_force_pumps()
     prior = hierarchical_prior(PUMP_O, PUMP_T, free_mean=True, hyperprior=PUMP_HYPER)
     row = posterior(PUMP_O, PUMP_T, prior, upper_margin=2.0).iloc[9]
-    assert prior.shape == pytest.approx(alpha, rel=1e-5)
-    assert prior.rate == pytest.approx(beta, rel=1e-5)
+    assert prior.hyperprior["posterior_shape_mean"] == pytest.approx(alpha, rel=1e-5)
+    assert prior.hyperprior["posterior_rate_mean"] == pytest.approx(beta, rel=1e-5)
+    a, b, w = prior.arrays()
+    assert prior.mean == pytest.approx(prior.shape / prior.rate, rel=1e-12)
+    assert prior.sd == pytest.approx(np.sqrt(prior.shape) / prior.rate, rel=1e-9)
     assert row.hr_mean == pytest.approx(theta, rel=1e-6)
     assert row.p_above == pytest.approx(tail, abs=1e-6)
     # the interval: the mixture CDF at the reported limits is 2.5% and 97.5%

@@ -382,8 +382,10 @@ def hierarchical_prior(
     -------
     Prior
         method ``"hierarchical"``, with ``components`` (shape_k, rate_k, hyperposterior
-        weight_k) and ``hyperprior`` (what was used and hyperposterior summaries); ``shape``
-        and ``rate`` are the hyperposterior means of a and b.
+        weight_k) and ``hyperprior`` (what was used, and hyperposterior summaries such as
+        the posterior means of a and b); ``shape`` and ``rate`` summarise the mixture by the
+        single gamma with its mean and standard deviation. ``log_marginal`` is the log
+        evidence: the data's marginal likelihood under the hyperprior.
 
     Raises
     ------
@@ -416,10 +418,12 @@ def hierarchical_prior(
         f"{summary['posterior_spread_median']:.3g} (90% {lo90:.3g} to {hi90:.3g}); each "
         "program's posterior is a mixture of gammas that carries this uncertainty."
     )
-    # log marginal likelihood of the data under the hyperprior (the evidence), for the record
+    # shape and rate summarise the mixture by the single gamma of the same mean and sd
+    mean = float(w @ (a / b))
+    variance = float(w @ (a * (a + 1.0) / b**2)) - mean**2
     return Prior(
-        shape=summary["posterior_shape_mean"],
-        rate=summary["posterior_rate_mean"],
+        shape=mean**2 / variance,
+        rate=mean / variance,
         method="hierarchical",
         free_mean=free_mean,
         log_marginal=log_evidence,

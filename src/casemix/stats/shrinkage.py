@@ -72,8 +72,8 @@ class Prior:
     ----------
     shape, rate : float
         Gamma shape a and rate b (> 0); prior mean a / b, variance a / b**2. For a mixture
-        (``components`` given) they are the mixture's weighted mean shape and rate, a summary
-        only: the components are what is used.
+        (``components`` given) they are the single gamma with the mixture's mean and
+        variance, a summary only: the components are what is used.
     method : {"fixed", "empirical_bayes", "empirical_bayes_fallback", "hierarchical"}
         Given by the user, estimated from the programs (plug-in), the fallback used because
         the plug-in estimate could not be made (see `note`), or integrated over a hyperprior.
