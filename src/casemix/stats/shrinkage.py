@@ -460,8 +460,9 @@ def mixture_quantile(
 ) -> float:
     """The q-quantile of a mixture of Gamma(shape_k, rate_k) laws with weights w_k.
 
-    Found by Brent's method on the mixture CDF, bracketed by the smallest and largest
-    component quantile (the mixture quantile lies between them).
+    Found by Brent's method on the mixture CDF, bracketed by Cantelli's inequality around the
+    mixture's mean mu and sd s: P(X <= mu - k s) <= 1 / (1 + k**2), so the quantile lies in
+    [max(0, mu - s sqrt((1 - q) / q)), mu + s sqrt(q / (1 - q))].
 
     Parameters
     ----------
@@ -479,10 +480,15 @@ def mixture_quantile(
     shapes, rates = np.broadcast_arrays(np.asarray(shapes, float), np.asarray(rates, float))
     shapes, rates = shapes.ravel(), rates.ravel()
     w = np.full(shapes.size, 1.0 / shapes.size) if weights is None else np.asarray(weights)
-    component = stats.gamma.ppf(q, shapes, scale=1.0 / rates)
-    low, high = float(component.min()), float(component.max())
-    if high - low <= 1e-12 * max(high, 1.0):
-        return low
+    if shapes.size == 1:
+        return float(stats.gamma.ppf(q, shapes[0], scale=1.0 / rates[0]))
+    mean = float(w @ (shapes / rates))
+    sd = math.sqrt(max(float(w @ (shapes * (shapes + 1.0) / rates**2)) - mean**2, 0.0))
+    if sd <= 1e-12 * mean:
+        return mean
+    slack = 1.0 + 1e-6
+    low = max(0.0, mean - slack * sd * math.sqrt((1.0 - q) / q))
+    high = mean + slack * sd * math.sqrt(q / (1.0 - q))
 
     def gap(x: float) -> float:
         return float(special.gammainc(shapes, x * rates) @ w) - q

@@ -36,7 +36,7 @@ from scipy import stats
 from casemix.errors import InputError, RulesError
 from casemix.stats.hierarchy import PriorSettings, prior_settings_from_dict
 from casemix.stats.poisson import as_observed_expected
-from casemix.stats.shrinkage import Prior, mixture_cdf, mixture_sf, posterior
+from casemix.stats.shrinkage import Prior, mixture_cdf, mixture_sf
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -364,20 +364,14 @@ def assign_verdicts(
     rules = Rules() if rules is None else rules
     o, e = as_observed_expected(observed, expected)
     o, e = np.atleast_1d(o), np.atleast_1d(e)
-    summary = posterior(
-        o,
-        e,
-        prior,
-        level=rules.credible_level,
-        upper_margin=rules.upper_margin,
-        lower_margin=rules.lower_margin,
-    )
+    if o.ndim != 1:
+        raise InputError(f"observed and expected must be one value per program, got {o.shape}.")
     small = e < rules.min_expected
     verdict = np.select(
         [
             small,
-            summary["p_above"].to_numpy() >= rules.probability,
-            summary["p_below"].to_numpy() >= rules.probability,
+            mixture_sf(rules.upper_margin, prior, o, e) >= rules.probability,
+            mixture_cdf(rules.lower_margin, prior, o, e) >= rules.probability,
         ],
         ["too_little_data", "excess", "favorable"],
         default="consistent",
