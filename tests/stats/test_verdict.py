@@ -208,6 +208,29 @@ def test_distances_under_a_mixture_prior_agree_with_its_posterior():
             assert posterior([o + k - 1], [e], prior).p_above[0] < 0.975
 
 
+def test_bayesian_fdr_rule_flags_the_largest_set_with_a_small_expected_share_of_errors():
+    # Invented programs under Gamma(2, 2); each program's chance of a wrong flag from
+    # scipy.stats.gamma, sorted by hand: the largest k with mean of the k smallest <= 0.05.
+    observed = np.array([40, 5, 30, 18, 9, 3, 25, 12])
+    expected = np.array([20.0, 20.0, 18.0, 12.0, 6.0, 2.0, 25.0, 30.0])
+    p_above, p_below = _p_above(observed, expected), _p_below(observed, expected)
+    wrong = 1 - np.maximum(p_above, p_below)
+    order = np.argsort(wrong)
+    k = max(i + 1 for i in range(8) if wrong[order[: i + 1]].mean() <= 0.05)
+    table = assign_verdicts(observed, expected, PRIOR, Rules(bayesian_fdr=0.05))
+    flagged = np.zeros(8, dtype=bool)
+    flagged[order[:k]] = True
+    assert np.array_equal(table.verdict.isin(["excess", "favorable"]).to_numpy(), flagged)
+    assert k > (assign_verdicts(observed, expected, PRIOR).verdict != "consistent").sum()
+    # the distances use the probability the rule amounts to: the surest program left out
+    # needs exactly events_to_excess more to pass the lowest flagged probability
+    cut = np.maximum(p_above, p_below)[order[k - 1]]
+    for i in np.flatnonzero(~flagged & (p_above > p_below)):
+        n = int(table.events_to_excess[i])
+        assert _p_above(observed[i] + n, expected[i]) >= cut > _p_above(observed[i] + n - 1,
+                                                                          expected[i])
+
+
 # ---------------------------------------------------------------- rules
 
 
@@ -221,6 +244,7 @@ def test_default_rules_and_round_trip():
         "min_expected": 1.0,
         "credible_level": 0.95,
         "power": 0.8,
+        "bayesian_fdr": 0.0,
     }
     custom = rules_from_dict({"upper_margin": 1.25, "min_expected": 2})
     assert rules_from_dict(custom.to_dict()) == custom

@@ -264,12 +264,17 @@ def _network_facts(programs: pd.DataFrame, prior: Prior, rules: Rules) -> dict[s
     network = network_oe(programs["observed"], programs["expected"], rules.credible_level)
     judged = programs["verdict"] != "too_little_data"
     false_flags = float(programs.loc[judged, "null_flag_probability"].sum())
+    wrong = np.select([programs["verdict"] == "excess", programs["verdict"] == "favorable"],
+                      [1.0 - programs["p_above"], 1.0 - programs["p_below"]], 0.0)
     return {
         "network": {**network, "level": rules.credible_level, "centre": prior.centre},
         "multiplicity": {
             "programs_judged": int(judged.sum()),
             "expected_false_flags": false_flags,
             "flags": int(programs["verdict"].isin(["excess", "favorable"]).sum()),
+            "rule": "bayesian_fdr" if rules.bayesian_fdr > 0 else "probability",
+            "bayesian_fdr": rules.bayesian_fdr,
+            "posterior_expected_wrong_flags": float(wrong.sum()),
             "note": (
                 "Expected number of programs given a verdict other than consistent if every "
                 "program's true hazard ratio were 1, under the rules in force with the prior "

@@ -25,7 +25,7 @@ from __future__ import annotations
 import math
 import sys
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field, fields
+from dataclasses import dataclass, field, fields, replace
 from pathlib import Path
 from typing import Any
 
@@ -73,6 +73,7 @@ _CHECKS: dict[str, tuple[Callable[[float], bool], str]] = {
     "min_expected": (lambda v: v >= 0.0, "a number of expected events >= 0, e.g. 1"),
     "credible_level": (lambda v: 0.0 < v < 1.0, "a number strictly between 0 and 1, e.g. 0.95"),
     "power": (lambda v: 0.0 < v < 1.0, "a number strictly between 0 and 1, e.g. 0.8"),
+    "bayesian_fdr": (lambda v: 0.0 <= v < 0.5, "0 (off) or a rate below 0.5, e.g. 0.05"),
 }
 
 
@@ -109,6 +110,11 @@ class Rules:
     power : float, default 0.8
         Chance of being called ``excess`` (``favorable``) used for the smallest detectable
         hazard ratio of each program; in (0, 1).
+    bayesian_fdr : float, default 0.0
+        0: the probability rule above. A rate in (0, 0.5): flag instead the largest set of
+        programs whose posterior expected share of wrong flags is at most this rate (each
+        program's chance of being wrong is 1 - max(P(HR > upper_margin), P(HR < lower_margin))
+        ; programs are added from the surest; Muller, Parmigiani, Robert & Rousseau 2004).
     prior : PriorSettings
         How the prior is chosen (the rules file's ``[prior]`` table; default hierarchical
         with the mean fixed at 1).
@@ -120,6 +126,7 @@ class Rules:
     min_expected: float = 1.0
     credible_level: float = 0.95
     power: float = 0.8
+    bayesian_fdr: float = 0.0
     prior: PriorSettings = field(default_factory=PriorSettings, compare=True)
 
     def __post_init__(self) -> None:
@@ -310,6 +317,30 @@ def _power(e, excess_from, favorable_up_to, small, rules: Rules) -> dict[str, An
     }
 
 
+def _fdr_verdicts(verdict, small, prior, o, e, rules: Rules):
+    """Verdicts by the Bayesian false discovery rule, and the rules with the probability it
+    amounts to for this network (the surest flag left out: 1 - bayesian_fdr when none).
+
+    Each judged program's chance of a wrong flag is v = 1 - max(p_above, p_below); programs
+    with max <= 0.5 are never flagged. Sorted by v, the first k are flagged for the largest k
+    with mean(v_1..k) <= bayesian_fdr; each in its likelier direction.
+    """
+    p_above = mixture_sf(rules.upper_margin, prior, o, e)
+    p_below = mixture_cdf(rules.lower_margin, prior, o, e)
+    surest = np.maximum(p_above, p_below)
+    eligible = ~small & (surest > 0.5)
+    wrong = np.where(eligible, 1.0 - surest, np.inf)
+    order = np.argsort(wrong, kind="stable")
+    running = np.cumsum(wrong[order]) / np.arange(1, o.size + 1)
+    k = int(np.sum(running <= rules.bayesian_fdr))  # running mean rises: the first k pass
+    flagged = np.zeros(o.size, dtype=bool)
+    flagged[order[:k]] = True
+    verdict = np.where(small, "too_little_data", np.where(
+        flagged, np.where(p_above >= p_below, "excess", "favorable"), "consistent"))
+    cut = float(surest[order[k - 1]]) if k else 1.0 - rules.bayesian_fdr
+    return verdict, replace(rules, probability=min(max(cut, 0.5 + 1e-12), 1.0 - 1e-12))
+
+
 VERDICT_COLUMNS = (
     "verdict", "events_to_excess", "events_to_favorable", "events_more_to_change",
     "events_fewer_to_change", "excess_reachable", "favorable_reachable",
@@ -324,7 +355,9 @@ def assign_verdicts(
 
     Every distance and power figure holds the prior fixed (for a hierarchical prior, its
     hyperposterior weights): re-estimating the prior with another count would move it a
-    little.
+    little. Under the Bayesian false discovery rule (``rules.bayesian_fdr`` > 0) they also
+    hold the other programs fixed: they use the probability that rule amounts to for this
+    network (the lowest posterior probability among the flagged programs).
 
     Parameters
     ----------
@@ -376,6 +409,8 @@ def assign_verdicts(
         ["too_little_data", "excess", "favorable"],
         default="consistent",
     )
+    if rules.bayesian_fdr > 0:
+        verdict, rules = _fdr_verdicts(verdict, small, prior, o, e, rules)
     excess_from, favorable_up_to = verdict_thresholds(e, prior, rules)
     oi = o.astype(np.int64)
     columns = {"verdict": verdict.tolist(),
