@@ -226,8 +226,7 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
         "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
                     for i, code in enumerate(programs["program"])],
         "verdict": [verdict_html(v, palette) for v in programs["verdict"]],
-        "reach": [reach_text(r, data.run["rules"].get("power", 0.8))
-                  for _, r in programs.iterrows()],
+        "reach": [reach_text(r) for _, r in programs.iterrows()],
         "recipients": counts_text(programs["recipients"], options),
         "observed": counts_text(programs["observed"], options),
         "expected": [_num(e, 1) for e in programs["expected"]],
@@ -247,7 +246,8 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     level = data.run.get("credible_level", 0.95)
     headers = {
         "program": "Program", "verdict": "Verdict",
-        "reach": "Could be called (true HR)", "recipients": "Recipients",
+        "reach": f"Could be called ({rules.get('power', 0.8):.0%} chance, true HR)",
+        "recipients": "Recipients",
         "observed": "Observed (O)", "expected": "Expected (E)", "oe": "O/E (exact 95%)",
         "hr": f"Hazard ratio ({level:.0%} credible)",
         "p_above": f"P(HR\u00a0>\u00a0{rules.get('upper_margin', 1.0):g})",
@@ -358,16 +358,20 @@ def what_if_text(row: pd.Series, min_expected: float = 1.0) -> str:
     return held + text + "."
 
 
-def reach_text(row: pd.Series, power: float = 0.8) -> str:
-    """Which verdicts a program can reach and the smallest hazard ratio it could detect.
+def reach_text(row: pd.Series) -> str:
+    """Which verdicts a program can reach and the true hazard ratios at which it would be.
 
     Parameters
     ----------
     row : pandas.Series
         One row of programs.csv (``verdict``, ``detectable_hr_excess``,
         ``detectable_hr_favorable``, ``favorable_reachable``).
-    power : float, default 0.8
-        The rules' power for the detectable hazard ratios.
+
+    Returns
+    -------
+    str
+        E.g. ``"excess if HR ≥ 1.49; favorable if HR ≤ 0.61"`` (non-breaking spaces inside
+        each part), or ``"…; favorable out of reach"``; an en dash for too little data.
     """
     if row["verdict"] == "too_little_data" or pd.isna(row.get("detectable_hr_excess")):
         return MISSING
@@ -376,7 +380,7 @@ def reach_text(row: pd.Series, power: float = 0.8) -> str:
         parts.append(f"favorable if HR ≤ {row['detectable_hr_favorable']:.2f}")
     else:
         parts.append("favorable out of reach")
-    return f"{'; '.join(parts)} ({power:.0%} chance)"
+    return "; ".join(part.replace(" ", "\u00a0") for part in parts)
 
 
 def _at_risk_row(data: EvaluationFolder, code: str, options: ReportOptions) -> list[str]:
@@ -422,11 +426,11 @@ def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
         _interval(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
         _interval(row["hr_mean"], row["hr_lower"], row["hr_upper"]))
     rules = data.run["rules"]
-    what_if = Markup("<p>{}</p><p>What this program can show: {}. The hazard ratios are the "
-                     "true ones at which the verdict would be reached with that chance, under "
-                     "the rules in force.</p>").format(
-        what_if_text(row, rules.get("min_expected", 1.0)),
-        reach_text(row, rules.get("power", 0.8)))
+    what_if = Markup("<p>{}</p><p>What this program can show: {} (true hazard ratios at which "
+                     "the verdict would be reached with a {:.0%} chance, under the rules in "
+                     "force).</p>").format(
+        what_if_text(row, rules.get("min_expected", 1.0)), reach_text(row),
+        rules.get("power", 0.8))
     return Markup('<div class="program" id="{}"><h3>{}</h3>{}{}<div class="pair">{}</div>'
                   "</div>").format(
         program_anchor(position, code), code, facts, what_if,
