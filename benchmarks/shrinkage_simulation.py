@@ -84,8 +84,8 @@ def null_scenario(networks: int) -> None:
     fallback = np.array(fallback)
     print(f"\n## Null networks ({networks} x {PROGRAMS} programs, every true HR = 1)\n")
     print(f"plug-in EB fell back to Gamma(2, 2) in {fallback.sum()} of {networks} networks")
-    print("| prior | false flags per network | networks with >= 1 flag | predicted (sum of "
-          "P(flag | HR = 1)) |")
+    print("\n| prior | false flags per network | networks with >= 1 flag | predicted (sum of "
+          "P(flag at HR = 1)) |")
     print("| --- | --- | --- | --- |")
     for label in ("before", "after"):
         f = np.array(flags[label])
@@ -95,7 +95,7 @@ def null_scenario(networks: int) -> None:
     print(f"| BH 5% (exact p) | {_mean_se(b)} | {_share_se(int((b > 0).sum()), networks)} | - |")
     f = np.array(flags["before"])
     if fallback.any():
-        print(f"before, fallback networks: {f[fallback].sum()} of {f.sum()} false flags; "
+        print(f"\nbefore, fallback networks: {f[fallback].sum()} of {f.sum()} false flags; "
               f"{_share_se(int((f[fallback] > 0).sum()), int(fallback.sum()))} of them with "
               "a flag")
 
@@ -145,7 +145,7 @@ def drift_scenario(networks: int) -> None:
             favorable[label].append(int((table["verdict"] == "favorable").sum()))
     print(f"\n## Era drift ({networks} x {PROGRAMS} programs, every true HR = 0.8)\n")
     print(f"network O/E test rejects 1 (p < 0.05) in {_share_se(rejects, networks)}")
-    print("| prior | programs called favorable per network |")
+    print("\n| prior | programs called favorable per network |")
     print("| --- | --- |")
     for label, values in favorable.items():
         print(f"| {label} | {_mean_se(values)} |")
