@@ -11,6 +11,7 @@ from __future__ import annotations
 import datetime as dt
 import importlib.util
 import sys
+import tempfile
 from pathlib import Path
 
 import numpy as np
@@ -21,6 +22,7 @@ from lifelines import CoxPHFitter, KaplanMeierFitter
 from casemix import demo
 from casemix.data.spec import load_spec
 from casemix.errors import InputError
+from casemix.stats.verdict import Rules, load_rules
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -176,11 +178,25 @@ def test_spec_is_valid_and_names_extract_columns(network, tmp_path):
     assert set(spec.required_columns) <= set(network.cohort.columns)
 
 
-def test_rules_file_has_the_verdict_table(network):
+def test_rules_file_has_the_verdict_and_prior_tables(network):
     rules = tomllib.loads(network.rules_text)
     assert rules == {"verdict": {"probability": 0.975, "upper_margin": 1.0,
                                  "lower_margin": 1.0, "min_expected": 1.0,
-                                 "credible_level": 0.95}}
+                                 "credible_level": 0.95, "power": 0.8, "bayesian_fdr": 0.0},
+                     "prior": {"method": "hierarchical", "free_mean": False,
+                               "hyperprior": {
+                                   "spread": {"distribution": "halfcauchy", "scale": 0.25},
+                                   "mean": {"distribution": "lognorm", "s": 1.0,
+                                            "scale": 1.0}}}}
+    # the file states the defaults: reading it gives the default rules
+    assert rules_from_toml(network.rules_text) == Rules()
+
+
+def rules_from_toml(text):
+    with tempfile.TemporaryDirectory() as folder:
+        path = Path(folder) / "rules.toml"
+        path.write_text(text, encoding="utf-8")
+        return load_rules(path)
 
 
 # --- shape of the extracts ----------------------------------------------------------------

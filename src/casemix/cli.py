@@ -121,14 +121,23 @@ def _date(value: str | None, option: str) -> dt.date | None:
         raise typer.Exit(2) from None
 
 
+_PRIOR_CHOICES = {
+    "hier": ("hierarchical", False),
+    "hier-free": ("hierarchical", True),
+    "eb": ("empirical_bayes", False),
+    "eb-free": ("empirical_bayes", True),
+}
+
+
 def _prior(value: str):
-    """Parse --prior: 'eb' (mean fixed at 1), 'eb-free' (free mean) or 'fixed:SHAPE,RATE'."""
+    """Parse --prior: 'rules' (the rules file's [prior]), 'hier', 'hier-free', 'eb', 'eb-free'
+    (hierarchical or plug-in empirical Bayes, mean fixed at 1 or free) or 'fixed:SHAPE,RATE'."""
     from casemix.stats.shrinkage import fixed_prior
 
-    if value == "eb":
+    if value == "rules":
         return None
-    if value == "eb-free":
-        return "free"
+    if value in _PRIOR_CHOICES:
+        return _PRIOR_CHOICES[value]
     if value.startswith("fixed:"):
         try:
             shape, rate = (float(part) for part in value[len("fixed:") :].split(","))
@@ -136,7 +145,8 @@ def _prior(value: str):
         except (ValueError, CasemixError):
             pass
     err.print(
-        f"error: --prior {value!r} is not understood; use eb, eb-free or fixed:SHAPE,RATE "
+        f"error: --prior {value!r} is not understood; use rules, hier, hier-free, eb, eb-free "
+        "or fixed:SHAPE,RATE "
         "(e.g. fixed:2,2)",
         markup=False,
     )
@@ -268,8 +278,13 @@ def evaluate(
         typer.Option("--rules", exists=True, dir_okay=False, help="Verdict rules (TOML)."),
     ] = None,
     prior: Annotated[
-        str, typer.Option("--prior", help="eb (default), eb-free, or fixed:SHAPE,RATE.")
-    ] = "eb",
+        str,
+        typer.Option(
+            "--prior",
+            help="rules (default: the rules file's [prior], else hierarchical with mean 1), "
+            "hier, hier-free, eb, eb-free (plug-in empirical Bayes), or fixed:SHAPE,RATE.",
+        ),
+    ] = "rules",
     cutoff: CutoffOption = None,
     window_from: FromOption = None,
     window_to: ToOption = None,
@@ -295,8 +310,9 @@ def evaluate(
             records,
             model,
             rules,
-            prior=None if chosen == "free" else chosen,
-            free_mean=chosen == "free",
+            prior=None if chosen is None or isinstance(chosen, tuple) else chosen,
+            prior_method=chosen[0] if isinstance(chosen, tuple) else None,
+            free_mean=chosen[1] if isinstance(chosen, tuple) else None,
             cutoff=cut,
             window=None if window == (None, None) else window,
         )

@@ -25,7 +25,15 @@ def test_posteriors_and_verdicts_under_each_prior():
     assert notes == []
     assert list(dict.fromkeys(table["prior"])) == [
         "as_evaluated", "gamma_0.5", "gamma_1", "gamma_2", "gamma_5", "eb_free_mean",
+        "eb_plug_in", "hier_spread_0.1", "hier_spread_0.25", "hier_spread_0.5", "hier_spread_1",
+        "hier_free_mean",
     ]  # fmt: skip
+    # plug-in EB with the mean fixed: REFERENCE_CHECKS.md section 7, a = b = 2.481020
+    plug_in = table[table["prior"] == "eb_plug_in"].iloc[0]
+    assert (plug_in["shape"], plug_in["rate"]) == pytest.approx((2.481020, 2.481020), rel=1e-5)
+    # a wider hyperprior on the spread shrinks less: the largest O/E program's HR rises
+    hier = table[(table["program"] == "P2") & table["prior"].str.startswith("hier_spread")]
+    assert np.all(np.diff(hier["hr_mean"].to_numpy()) > 0)
     evaluated = table[table["prior"] == "as_evaluated"].set_index("program")
     # REFERENCE_CHECKS.md section 7, EB posteriors with a = b = 2.481020 (scipy.stats.gamma):
     # (2, 5.1) mean 0.59108, 2.5% 0.17677, 97.5% 1.25094; (30, 18.2) 1.57057, 1.07760, 2.15494
@@ -41,7 +49,7 @@ def test_posteriors_and_verdicts_under_each_prior():
     # REFERENCE_CHECKS.md section 7, free-mean EB: a = 3.02518, b = 2.57234 (rel 1e-4)
     assert (free["shape"], free["rate"]) == pytest.approx((3.02518, 2.57234), rel=1e-4)
     # verdict rule (design default): excess when P(HR > 1) >= 0.975 under Gamma(a+O, b+E)
-    for row in table.itertuples():
+    for row in table[~table["prior"].str.startswith("hier")].itertuples():
         p_above = stats.gamma.sf(1, row.shape + row.observed, scale=1 / (row.rate + row.expected))
         excess = p_above >= 0.975
         favorable = (

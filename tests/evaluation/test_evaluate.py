@@ -246,10 +246,17 @@ def test_empty_cohort_is_an_error(by_race, model_a):
                  window=("2021-01-01", None))  # fmt: skip
 
 
-def test_default_prior_with_two_programs_falls_back_and_says_so(by_race, model_a):
+def test_default_prior_with_two_programs_needs_no_fallback(by_race, model_a):
+    # The hierarchical default integrates over the spread: two programs are enough (the
+    # hyperprior carries the rest), where plug-in empirical Bayes has to fall back.
     model, _ = model_a
-    with pytest.warns(PriorWarning, match="at least 3 are needed"):
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", PriorWarning)
         result = evaluate(by_race, model, cutoff=rr.ROSSI_CUTOFF)
+    assert result.run["prior"]["method"] == "hierarchical"
+    assert result.run["prior"]["centre"] == "the reference (prior mean fixed at 1)"
+    with pytest.warns(PriorWarning, match="at least 3 are needed"):
+        result = evaluate(by_race, model, cutoff=rr.ROSSI_CUTOFF, prior_method="empirical_bayes")
     prior = result.run["prior"]
     assert prior["method"] == "empirical_bayes_fallback"
     assert (prior["shape"], prior["rate"]) == (2.0, 2.0)  # the documented default fallback
@@ -312,7 +319,7 @@ def _simulate(path: Path, rossi, generator, seed: int, true_hr=None) -> np.ndarr
 
 
 def _evaluate_quietly(path, model, spec):
-    """evaluate() with the default empirical-Bayes prior; the fallback may or may not occur."""
+    """evaluate() with the default (hierarchical) prior; warnings of other priors silenced."""
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", PriorWarning)
         return evaluate(read_records(path, spec), model, cutoff=rr.ROSSI_CUTOFF)
@@ -326,9 +333,9 @@ def test_simulated_cohort_runs_through_the_pipeline(tmp_path, rossi, generator, 
     assert len(records.exclusions) == 0 and (cohort.frame["time"] < rr.HORIZON_DAYS).any()
     result = _evaluate_quietly(tmp_path / "sim.csv", model, spec_a)
     assert len(result.programs) == SIM_PROGRAMS
-    # The EB prior finds a spread of hazard ratios near the true sd of 0.35 (loose check).
-    assert result.prior.method == "empirical_bayes"
-    assert 0.2 < 1 / np.sqrt(result.prior.shape) < 0.5
+    # The hierarchical prior finds a spread of hazard ratios near the true sd of 0.35 (loose).
+    assert result.prior.method == "hierarchical"
+    assert 0.2 < result.prior.hyperprior["posterior_spread_median"] < 0.5
     # O/E tracks the truth: correlation of log O/E with log HR over programs.
     oe = result.programs["oe_ratio"].to_numpy()
     assert np.corrcoef(np.log(oe + 0.5 / result.programs["expected"]), np.log(true_hr))[0, 1] > 0.6
@@ -363,3 +370,30 @@ def test_no_program_stands_out_when_every_true_hr_is_one(
     # Nominal: P(HR > 1) >= 0.975 or P(HR < 1) >= 0.975, 2.5% each side = 5%. 4 seeds x 200
     # programs = 800: Monte-Carlo sd sqrt(0.05 * 0.95 / 800) = 0.0077; margin 2 sd.
     assert share <= 0.05 + 2 * 0.0077, share
+
+
+def test_era_drift_is_reported_with_the_centre_and_a_caution(
+    tmp_path, rossi, generator, model_a, spec_a
+):
+    # Every program's true HR is 0.8 (invented era drift): the network's O/E is tested against
+    # 1 (exact Poisson test: scipy.stats.poisson; Garwood limits: scipy.stats.chi2) and the
+    # cautions recommend the free mean, which calls more programs favorable.
+    model, _ = model_a
+    _simulate(tmp_path / "drift.csv", rossi, generator, seed=8, true_hr=0.8)
+    result = _evaluate_quietly(tmp_path / "drift.csv", model, spec_a)
+    network = result.run["network"]
+    o, e = result.programs["observed"].sum(), result.programs["expected"].sum()
+    assert network["oe"] == pytest.approx(o / e)
+    assert network["oe_upper"] == pytest.approx(stats.chi2.ppf(0.975, 2 * o + 2) / 2 / e)
+    p = 2 * min(stats.poisson.sf(o - 1, e), stats.poisson.cdf(o, e))
+    assert network["p_value"] == pytest.approx(min(p, 1.0)) and network["p_value"] < 0.05
+    assert network["centre"] == "the reference (prior mean fixed at 1)"
+    assert any("free mean" in c for c in result.run["cautions"])
+    assert result.run["multiplicity"]["expected_false_flags"] == pytest.approx(
+        result.programs["null_flag_probability"].sum())
+    free = evaluate(read_records(tmp_path / "drift.csv", spec_a), model, cutoff=rr.ROSSI_CUTOFF,
+                    free_mean=True)
+    assert free.run["network"]["centre"].startswith("the network's estimated mean")
+    assert not any("free mean" in c for c in free.run["cautions"])
+    favorable = (free.programs["verdict"] == "favorable").sum()
+    assert favorable > (result.programs["verdict"] == "favorable").sum()

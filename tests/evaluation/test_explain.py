@@ -1,10 +1,11 @@
 """Case-mix decomposition of log(E / E_avg) over covariate groups, on rossi.
 
 The outside references are lifelines (Cox fit, baseline read as a step function) for E and
-E_avg = exp(sum_g c_g) sum_i H0(t_i), with c_g the log-mean-exp over the reference population
-of covariate group g's term (the average recipient on the risk scale; scipy.special.logsumexp),
-and scipy.integrate.quad for the Aumann-Shapley path integral int_0^1 sum_i w_i(s) d_ig ds of
-the offset terms d_ig = lp_ig - c_g, with weights w_i(s) proportional to H0(t_i) exp(s d_i).
+E_avg = exp(sum_g c_g) sum_i H0(t_i), and scipy.integrate.quad for the Aumann-Shapley path
+integral int_0^1 sum_i w_i(s) lp_ig ds, with weights w_i(s) proportional to H0(t_i) exp(s lp_i).
+The anchor c_g is that path integral over the whole reference population, so that
+exp(sum_g c_g) = sum_j H0(t_j) exp(lp_j) / sum_j H0(t_j), the reference population's own
+follow-up weighted mean relative risk.
 """
 
 from __future__ import annotations
@@ -16,7 +17,6 @@ import pandas as pd
 import pytest
 import rossi_records as rr
 from scipy import integrate
-from scipy.special import logsumexp
 
 from casemix import build_cohort, fit_reference, load_spec, read_records
 from casemix.evaluation.expected import expected_events
@@ -70,11 +70,6 @@ def explained(model_a):
     return _explain(*model_a)
 
 
-def _offsets(lp_groups: np.ndarray) -> np.ndarray:
-    """Log-mean-exp of each group's term over the reference population (scipy)."""
-    return logsumexp(lp_groups, axis=0) - np.log(lp_groups.shape[0])
-
-
 def _lifelines_terms(cph, rossi) -> np.ndarray:
     names = list(cph.params_.index)
     centred = rossi[names].to_numpy(float) - rossi[names].to_numpy(float).mean(axis=0)
@@ -91,6 +86,12 @@ def _aumann_shapley(hazard: np.ndarray, lp_groups: np.ndarray) -> np.ndarray:
 
     groups = range(lp_groups.shape[1])
     return np.array([integrate.quad(share, 0.0, 1.0, args=(g,), epsabs=1e-13)[0] for g in groups])
+
+
+def _anchor(cph, rossi) -> np.ndarray:
+    """The reference population's own path shares (lifelines hazard, scipy quad)."""
+    hazard, _ = rr.lifelines_hazard_and_risk(cph, rossi, rossi, rossi["week"])
+    return _aumann_shapley(hazard, _lifelines_terms(cph, rossi))
 
 
 def test_tidy_layout(explained):
@@ -122,7 +123,9 @@ def test_total_is_log_e_over_e_average_from_lifelines(explained, rossi):
     # lifelines' baseline is at the covariate means: H0(t_i) is the expected count of the
     # reference-average recipient followed as long as recipient i (step read at its week).
     hazard, risk = rr.lifelines_hazard_and_risk(cph, rossi, rossi, rossi["week"])
-    offset = _offsets(_lifelines_terms(cph, rossi)).sum()
+    offset = _anchor(cph, rossi).sum()
+    # the anchor is the follow-up weighted mean relative risk of the reference population
+    assert np.exp(offset) == pytest.approx(hazard @ risk / hazard.sum(), rel=1e-10)
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         e, e_avg = float(hazard[rows] @ risk[rows]), float(hazard[rows].sum() * np.exp(offset))
@@ -140,7 +143,7 @@ def test_groups_match_an_independent_path_integral(explained, rossi):
     names = list(cph.params_.index)
     hazard, _ = rr.lifelines_hazard_and_risk(cph, rossi, rossi, rossi["week"])
     terms = _lifelines_terms(cph, rossi)
-    lp_groups = terms - _offsets(terms)
+    lp_groups = terms - _anchor(cph, rossi)
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         theirs = _aumann_shapley(hazard[rows], lp_groups[rows])
@@ -150,17 +153,29 @@ def test_groups_match_an_independent_path_integral(explained, rossi):
         np.testing.assert_allclose(ours["contribution"], theirs, atol=1e-5)
 
 
+def test_the_reference_population_as_a_whole_has_no_case_mix_effect(folder, rossi, model_a):
+    # The whole reference population as one program: its expected count is its observed
+    # count (Breslow), and the anchor makes its case-mix factor exactly 1, every group 0.
+    _, model = model_a
+    records = _read(folder, "whole", rr.extract(rossi, ["all"] * len(rossi)), rr.MODEL_A,
+                    kinds=NUMERIC)
+    _, out = _explain(records, model)
+    total = out[out["group"] == TOTAL].iloc[0]
+    assert total.expected == pytest.approx(rossi["arrest"].sum(), rel=1e-9)  # 114 arrests
+    assert total.factor == pytest.approx(1.0, abs=1e-12)
+    np.testing.assert_allclose(out["contribution"], 0.0, atol=1e-10)
+    # the anchors agree with the lifelines/scipy path integral over the reference population
+    np.testing.assert_allclose(model.group_offsets,
+                               _anchor(rr.lifelines_fit(rossi, rr.MODEL_A), rossi), atol=1e-5)
+
+
 def test_the_average_recipient_has_no_case_mix_effect(folder, rossi, model_a):
     _, model = model_a
-    # Five recipients at the reference population's average on the risk scale: each
-    # covariate's term (x - mean) * beta equals that covariate's log-mean-exp over rossi
-    # (means from pandas, log-mean-exp from scipy), with different follow-up, in a program
-    # of their own.
+    # Five recipients at the anchor: each covariate's term (x - mean) * beta equals its
+    # anchor c_g (means from pandas), with different follow-up, in a program of their own.
     means = rossi[list(rr.MODEL_A)].mean()
     np.testing.assert_allclose(model.fit.center, means.to_numpy(), rtol=1e-14)
-    terms = (rossi[list(rr.MODEL_A)] - means).to_numpy() * model.fit.coef
-    np.testing.assert_allclose(model.group_offsets, _offsets(terms), rtol=1e-9, atol=1e-13)
-    at = means.to_numpy() + _offsets(terms) / model.fit.coef
+    at = means.to_numpy() + np.asarray(model.group_offsets) / model.fit.coef
     average = rossi.head(5).assign(
         recipient_id=[f"M{i}" for i in range(5)], week=[3, 10, 26, 40, 52],
         arrest=[1, 0, 1, 1, 0], **{name: float(v) for name, v in zip(rr.MODEL_A, at, strict=True)},
@@ -193,7 +208,7 @@ def test_a_categorical_is_one_group(folder, rossi):
     x = dummies[["age", "many", "some"]].to_numpy(float)
     terms = (x - x.mean(axis=0)) * cph.params_.to_numpy()
     lp_groups = np.column_stack([terms[:, 0], terms[:, 1] + terms[:, 2]])
-    lp_groups = lp_groups - _offsets(lp_groups)
+    lp_groups = lp_groups - _aumann_shapley(hazard, lp_groups)
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         ours = out[(out["program"] == program) & (out["group"] != TOTAL)]["contribution"]
@@ -213,11 +228,12 @@ def test_stratified_model_sums_to_the_total(folder, rossi):
     names = list(cph.params_.index)
     terms = (rossi[names].to_numpy(float) - cph._norm_mean.to_numpy()) * cph.params_.to_numpy()
     risk = np.exp(terms.sum(axis=1))
-    offset = _offsets(terms).sum()
     hazard = np.empty(len(rossi))
     for level in (0, 1):
         rows = (rossi["fin"] == level).to_numpy()
         hazard[rows] = rr.step_read(cph.baseline_cumulative_hazard_[level], rossi["week"][rows])
+    # the anchor: the reference population's follow-up weighted mean relative risk
+    offset = np.log(hazard @ risk / hazard.sum())
     for program, race in (("race0", 0), ("race1", 1)):
         rows_ = out[out["program"] == program]
         total = rows_[rows_["group"] == TOTAL].iloc[0]

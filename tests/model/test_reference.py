@@ -308,10 +308,10 @@ def test_a_future_format_version_is_refused_before_anything_else(saved, tmp_path
     # Everything else is wrong too (checksum, fields): the version is what gets reported.
     path = tmp_path / "future.json"
     path.write_text(json.dumps({"format_version": FORMAT_VERSION + 1, "checksum": "x"}))
-    with pytest.raises(ModelFileError, match=r"model format_version 2 is not supported by casemix"):
+    with pytest.raises(ModelFileError, match=r"model format_version 3 is not supported by casemix"):
         ReferenceModel.load(path)
-    edited = _rewrite(saved, tmp_path / "future2.json", lambda c: c.update(format_version=2))
-    with pytest.raises(ModelFileError, match=r"reads format_version 1\); refit the model"):
+    edited = _rewrite(saved, tmp_path / "old1.json", lambda c: c.update(format_version=1))
+    with pytest.raises(ModelFileError, match=r"reads format_version 2\); refit the model"):
         ReferenceModel.load(edited)
 
 

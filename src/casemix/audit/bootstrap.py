@@ -27,10 +27,11 @@ from typing import Any
 
 import numpy as np
 import pandas as pd
-from scipy import optimize, stats
+from scipy import stats
 
 from casemix.errors import ConvergenceError, ConvergenceWarning, InputError
 from casemix.stats.poisson import check_level
+from casemix.stats.shrinkage import mixture_quantile, posterior
 from casemix.survival import fit_cox
 
 __all__ = [
@@ -198,35 +199,28 @@ class _Refit:
             return None
 
 
-def mixture_interval(shape, rates, level: float = 0.95) -> tuple[float, float]:
-    """Equal-tailed interval of an equal-weight mixture of Gamma(shape, rate_b) laws.
+def mixture_interval(
+    shape, rates, level: float = 0.95, weights=None
+) -> tuple[float, float]:
+    """Equal-tailed interval of a mixture of Gamma(shape_b, rate_b) laws.
 
     Parameters
     ----------
-    shape : float
+    shape : float or array_like of float, shape (B,)
     rates : array_like of float, shape (B,)
+        Broadcast against `shape`.
     level : float, default 0.95
+    weights : array_like of float, shape (B,), optional
+        Default equal weights.
 
     Returns
     -------
     lower, upper : float
+        By `casemix.stats.shrinkage.mixture_quantile`.
     """
-    rates = np.asarray(rates, dtype=float)
     tail = (1.0 - check_level(level)) / 2.0
-
-    def cdf(x: float) -> float:
-        return float(np.mean(stats.gamma.cdf(x, shape, scale=1.0 / rates)))
-
-    limits = []
-    for q in (tail, 1.0 - tail):
-        # the mixture quantile lies between the components' quantiles
-        component = stats.gamma.ppf(q, shape, scale=1.0 / rates)
-        low, high = component.min(), component.max()
-        if high - low <= 1e-12 * max(high, 1.0):
-            limits.append(float(low))
-        else:
-            limits.append(optimize.brentq(lambda x, q=q: cdf(x) - q, low, high, xtol=1e-12))
-    return limits[0], limits[1]
+    return (mixture_quantile(tail, shape, rates, weights),
+            mixture_quantile(1.0 - tail, shape, rates, weights))
 
 
 def delta_expected(fit, cohort: ProgramArrays, *, level: float = 0.95) -> pd.DataFrame:
@@ -274,11 +268,15 @@ def _check_replicates(replicates: Any) -> int:
 
 def _program_rows(cohort, observed, e_full, draws, prior, level) -> pd.DataFrame:
     tail = (1.0 - level) / 2.0
+    plain = posterior(observed, e_full, prior, level=level)
+    a, b, w = prior.arrays()
     rows = []
     for j, program in enumerate(cohort.programs):
-        shape = prior.shape + observed[j]
-        plain = stats.gamma(shape, scale=1.0 / (prior.rate + e_full[j]))
-        lower, upper = mixture_interval(shape, prior.rate + draws[:, j], level)
+        # every prior component with every bootstrap draw of E, equally weighted over draws
+        shapes = np.repeat(a + observed[j], draws.shape[0])
+        rates = (b[:, None] + draws[None, :, j]).ravel()
+        weights = np.repeat(w, draws.shape[0]) / draws.shape[0]
+        lower, upper = mixture_interval(shapes, rates, level, weights)
         rows.append(
             {
                 "program": program,
@@ -286,8 +284,8 @@ def _program_rows(cohort, observed, e_full, draws, prior, level) -> pd.DataFrame
                 "expected": e_full[j],
                 "expected_lower": np.quantile(draws[:, j], tail),
                 "expected_upper": np.quantile(draws[:, j], 1.0 - tail),
-                "hr_lower": plain.ppf(tail),
-                "hr_upper": plain.isf(tail),
+                "hr_lower": plain["hr_lower"].iloc[j],
+                "hr_upper": plain["hr_upper"].iloc[j],
                 "hr_lower_boot": lower,
                 "hr_upper_boot": upper,
             }

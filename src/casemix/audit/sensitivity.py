@@ -1,8 +1,11 @@
 """Prior sensitivity: would another reasonable prior change any verdict?
 
 Every program's posterior and verdict are recomputed under the evaluation's prior, under fixed
-mean-1 priors Gamma(s, s) for a grid of shapes s (0.5 is vague, 5 shrinks hard), and under an
-empirical-Bayes prior whose mean is estimated too. The verdict rules are the evaluation's.
+mean-1 priors Gamma(s, s) for a grid of shapes s (0.5 is vague, 5 shrinks hard), under an
+empirical-Bayes prior whose mean is estimated too, under plug-in empirical Bayes with the mean
+fixed at 1, and under the hierarchical prior with the half-Cauchy hyperprior's scale on the
+spread set to each of `HYPER_SCALES` (the hyperprior's sensitivity; the default is 0.25) and
+with a free mean. The verdict rules are the evaluation's.
 """
 
 from __future__ import annotations
@@ -13,12 +16,20 @@ import numpy as np
 import pandas as pd
 
 from casemix.errors import PriorWarning
+from casemix.stats.hierarchy import HyperDensity, Hyperprior, hierarchical_prior
 from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior, posterior
 from casemix.stats.verdict import Rules, assign_verdicts
 
-__all__ = ["PRIOR_SHAPES", "changed_programs", "prior_sensitivity", "verdict_changes"]
+__all__ = [
+    "HYPER_SCALES",
+    "PRIOR_SHAPES",
+    "changed_programs",
+    "prior_sensitivity",
+    "verdict_changes",
+]
 
 PRIOR_SHAPES = (0.5, 1.0, 2.0, 5.0)
+HYPER_SCALES = (0.1, 0.25, 0.5, 1.0)
 AS_EVALUATED = "as_evaluated"
 
 
@@ -29,6 +40,12 @@ def _priors(observed, expected, prior: Prior) -> tuple[dict[str, Prior], list[st
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", PriorWarning)
         priors["eb_free_mean"] = empirical_bayes_prior(observed, expected, free_mean=True)
+        priors["eb_plug_in"] = empirical_bayes_prior(observed, expected)
+    for scale in HYPER_SCALES:
+        hyper = Hyperprior(first=HyperDensity("spread", "halfcauchy", (("scale", scale),)))
+        priors[f"hier_spread_{scale:g}"] = hierarchical_prior(observed, expected,
+                                                              hyperprior=hyper)
+    priors["hier_free_mean"] = hierarchical_prior(observed, expected, free_mean=True)
     notes = [str(w.message) for w in caught if issubclass(w.category, PriorWarning)]
     return priors, notes
 

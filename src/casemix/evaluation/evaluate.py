@@ -6,7 +6,7 @@ contract the report and the command line read; see DEVELOPERS.md).
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -23,7 +23,8 @@ from casemix.evaluation.expected import expected_events
 from casemix.evaluation.explain import casemix_contributions
 from casemix.evaluation.programs import program_table, survival_curves
 from casemix.model.reference import FORMAT_VERSION, ReferenceModel, resolve_analysis
-from casemix.stats.shrinkage import Prior, empirical_bayes_prior, posterior
+from casemix.stats.poisson import network_oe
+from casemix.stats.shrinkage import Prior, posterior
 from casemix.stats.verdict import Rules, assign_verdicts, load_rules
 
 PROGRAM_COLUMNS = [
@@ -51,7 +52,17 @@ PROGRAM_COLUMNS = [
     "p_more_exact",
     "p_fewer_exact",
     "casemix_factor",
+    "events_more_to_change",
+    "events_fewer_to_change",
+    "excess_reachable",
+    "favorable_reachable",
+    "detectable_hr_excess",
+    "detectable_hr_favorable",
+    "null_flag_probability",
 ]
+
+NETWORK_TEST_LEVEL = 0.05
+"""Two-sided p-value below which the network's overall O/E is called different from 1."""
 
 CAUTIONS = (
     "This is a statistical indicator that compares observed with expected events; it is not "
@@ -163,7 +174,8 @@ def evaluate(
     rules: Rules | str | Path | None = None,
     prior: Prior | None = None,
     *,
-    free_mean: bool = False,
+    free_mean: bool | None = None,
+    prior_method: str | None = None,
     cutoff=None,
     window=None,
 ) -> Evaluation:
@@ -178,9 +190,12 @@ def evaluate(
     rules : Rules or path, optional
         Verdict thresholds (default: the design's defaults).
     prior : Prior, optional
-        Gamma prior of the hazard ratios; default empirical Bayes from the programs.
-    free_mean : bool, default False
-        For the empirical-Bayes default: estimate the prior mean too instead of fixing it at 1.
+        Prior of the hazard ratios; default: chosen from the programs as the rules' ``[prior]``
+        settings say (hierarchical with the mean fixed at 1 unless set otherwise).
+    free_mean : bool, optional
+        Override the rules' ``free_mean`` (estimate the prior mean instead of fixing it at 1).
+    prior_method : {"hierarchical", "empirical_bayes", "fixed"}, optional
+        Override the rules' prior method.
     cutoff : date, optional
         Date the cohort's data are complete to (default: the records' or the spec's).
     window : (date or None, date or None), optional
@@ -205,7 +220,12 @@ def evaluate(
     table = program_table(expected, level=rules.credible_level)
     observed, exp = table["observed"].to_numpy(), table["expected"].to_numpy()
     if prior is None:
-        prior = empirical_bayes_prior(observed, exp, free_mean=free_mean)
+        settings = rules.prior
+        if free_mean is not None:
+            settings = replace(settings, free_mean=bool(free_mean))
+        if prior_method is not None:
+            settings = replace(settings, method=prior_method)
+        prior = settings.choose(observed, exp)
     post = posterior(
         observed,
         exp,
@@ -222,6 +242,8 @@ def evaluate(
     )
     programs["casemix_factor"] = programs["program"].map(totals).to_numpy()
     run = _run_facts(records, cohort, model, model_path, prior, rules)
+    run.update(_network_facts(programs, prior, rules))
+    run["cautions"] = list(CAUTIONS) + _network_cautions(run, prior)
     return Evaluation(
         programs=programs[PROGRAM_COLUMNS],
         recipients=expected.frame.drop(columns="expected_at_horizon"),
@@ -235,6 +257,49 @@ def evaluate(
         rules=rules,
         run=run,
     )
+
+
+def _network_facts(programs: pd.DataFrame, prior: Prior, rules: Rules) -> dict[str, Any]:
+    """The centre of shrinkage, the network's O/E with its test, and expected false flags."""
+    network = network_oe(programs["observed"], programs["expected"], rules.credible_level)
+    judged = programs["verdict"] != "too_little_data"
+    false_flags = float(programs.loc[judged, "null_flag_probability"].sum())
+    wrong = np.select([programs["verdict"] == "excess", programs["verdict"] == "favorable"],
+                      [1.0 - programs["p_above"], 1.0 - programs["p_below"]], 0.0)
+    return {
+        "network": {**network, "level": rules.credible_level, "centre": prior.centre},
+        "multiplicity": {
+            "programs_judged": int(judged.sum()),
+            "expected_false_flags": false_flags,
+            "flags": int(programs["verdict"].isin(["excess", "favorable"]).sum()),
+            "rule": "bayesian_fdr" if rules.bayesian_fdr > 0 else "probability",
+            "bayesian_fdr": rules.bayesian_fdr,
+            "posterior_expected_wrong_flags": float(wrong.sum()),
+            "note": (
+                "Expected number of programs given a verdict other than consistent if every "
+                "program's true hazard ratio were 1, under the rules in force with the prior "
+                "held fixed."
+            ),
+        },
+    }
+
+
+def _network_cautions(run: dict, prior: Prior) -> list[str]:
+    network, many = run["network"], run["multiplicity"]
+    cautions = [
+        f"Under these rules about {many['expected_false_flags']:.2g} of the "
+        f"{many['programs_judged']} programs judged would get a verdict other than consistent "
+        "even if every program's true hazard ratio were 1: verdicts are screening signals."
+    ]
+    if network["p_value"] < NETWORK_TEST_LEVEL and prior.method != "fixed" and not prior.free_mean:
+        cautions.append(
+            f"The network as a whole has O/E {network['oe']:.2f} ({network['level']:.0%} "
+            f"{network['oe_lower']:.2f} to {network['oe_upper']:.2f}; exact test of 1: p = "
+            f"{network['p_value']:.2g}): it differs from the reference, and the prior's centre "
+            "fixed at 1 reads that drift as spread between programs. Consider the free mean "
+            "(--prior hier-free) or a reference model refitted on recent years."
+        )
+    return cautions
 
 
 def _date_text(value) -> str | None:

@@ -4,20 +4,18 @@ For a program's recipients with baseline hazards H_i (each at his or her own fol
 stratum) and log relative risks lp_i = sum_g lp_ig (lp_ig: the terms of covariate group g),
 the case-mix effect is
 
-    log(E / E_avg) = log sum_i H_i exp(d_i) - log sum_i H_i,    d_ig = lp_ig - c_g,
+    log(E / E_avg) = log sum_i H_i exp(lp_i) - log sum_i H_i - sum_g c_g,
 
-where E_avg = exp(sum_g c_g) sum_i H_i is the expected count had every recipient been the
-reference population's average recipient, with the same follow-up. "Average" is taken on the
-risk scale: c_g is the log-mean-exp of group g's term over the reference population (stored in
-the model), so a program whose case mix in a group matches the reference population's gets a
-contribution near 0 for that group (at the covariate means, exp(lp) would understate the
-average risk, because the mean of exp is above exp of the mean). The log ratio is split over
-covariate groups by
-the Aumann-Shapley path decomposition (the integral from s = 0 to 1 of the H_i exp(s lp_i)
-weighted mean of lp_ig), which is symmetric in the groups and sums to the total by
-construction; the integral is taken by Gauss-Legendre quadrature (error far below 1e-10 for
-the smooth integrand). A group is all columns of one covariate (every level of a categorical,
-every term of a spline, a missing-value indicator with its covariate).
+where E_avg = exp(sum_g c_g) sum_i H_i is the expected count had every recipient carried the
+reference population's own follow-up weighted mean relative risk,
+exp(sum_g c_g) = sum_j H_j exp(lp_j) / sum_j H_j over the reference population (stored in the
+model as the per-group anchor c_g). So the reference population as a whole gets a factor of
+exactly 1. The log ratio is split over covariate groups by the Aumann-Shapley path
+decomposition (`casemix.model.reference.path_contributions`): group g's contribution is its
+path share for the program less its path share c_g for the reference population, so the
+groups sum to the total and each is 0 for the reference population itself. A group is all
+columns of one covariate (every level of a categorical, every term of a spline, a
+missing-value indicator with its covariate).
 """
 
 from __future__ import annotations
@@ -26,9 +24,10 @@ import numpy as np
 import pandas as pd
 
 from casemix.evaluation.expected import ExpectedEvents
-from casemix.model.reference import ReferenceModel, group_terms
+from casemix.model.reference import ReferenceModel, group_terms, path_contributions
 
-QUADRATURE_NODES = 32
+__all__ = ["TOTAL", "casemix_contributions"]
+
 TOTAL = "total"
 
 
@@ -52,36 +51,24 @@ def casemix_contributions(expected: ExpectedEvents, model: ReferenceModel) -> pd
         frame["expected"].to_numpy() / np.exp(frame["lp"].to_numpy()),
         0.0,
     )
-    nodes, weights = np.polynomial.legendre.leggauss(QUADRATURE_NODES)
-    nodes, weights = (nodes + 1) / 2, weights / 2
     rows = []
     codes = frame["program"].to_numpy()
     for program in np.unique(codes):
         at = codes == program
-        rows.extend(
-            _one_program(
-                program, hazard[at], terms[at] - offsets, groups, offsets.sum(), nodes, weights
-            )
-        )
+        rows.extend(_one_program(program, hazard[at], terms[at], groups, offsets))
     return pd.DataFrame(
         rows, columns=["program", "group", "contribution", "factor", "expected", "expected_average"]
     )
 
 
-def _one_program(program, hazard, lp_groups, groups, offset, nodes, weights) -> list[tuple]:
-    """``lp_groups`` are the terms less the reference offsets; ``offset`` is their sum."""
-    lp = lp_groups.sum(axis=1)
-    expected = float(hazard @ np.exp(lp + offset))
-    average = float(hazard.sum() * np.exp(offset))
+def _one_program(program, hazard, terms, groups, offsets) -> list[tuple]:
+    expected = float(hazard @ np.exp(terms.sum(axis=1)))
+    average = float(hazard.sum() * np.exp(offsets.sum()))
     if average <= 0:
         parts = np.full(len(groups), np.nan)
         total = np.nan
     else:
-        exponent = np.outer(nodes, lp)
-        exponent -= exponent.max(axis=1, keepdims=True)
-        path = hazard * np.exp(exponent)
-        path /= path.sum(axis=1, keepdims=True)
-        parts = weights @ (path @ lp_groups)
+        parts = path_contributions(hazard, terms) - offsets
         total = float(np.log(expected / average))
     out = [
         (program, name, float(part), float(np.exp(part)), np.nan, np.nan)

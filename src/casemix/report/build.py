@@ -29,8 +29,8 @@ REPORT_CAUTIONS = (
      "same recipients, and the model cannot see everything that matters clinically."),
     ("small programs",
      "Small programs are uncertain: with few expected events their hazard ratios have wide "
-     "intervals and are pulled strongly towards the network, so a single event can change the "
-     "picture."),
+     "intervals and are pulled strongly towards the prior's centre, so a single event can "
+     "change the picture."),
     ("clinical review",
      "Decisions about a program belong to clinical review under the applicable rules and "
      "licensed practice, not to this report."),

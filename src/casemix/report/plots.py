@@ -91,7 +91,7 @@ def _verdict_handles(verdicts: Sequence[str], palette: dict[str, str]) -> tuple[
 def _funnel_grid(expected: np.ndarray, log_expected: bool) -> np.ndarray:
     low = max(expected.min() * 0.8, 0.5)
     high = expected.max() * 1.15
-    grid = np.geomspace(low, high, 300) if log_expected else np.linspace(low, high, 300)
+    grid = np.geomspace(low, high, 1200) if log_expected else np.linspace(low, high, 1200)
     # The programs' own E are on the grid, so the drawn limit at a program is exact.
     return np.unique(np.concatenate([grid, expected]))
 
@@ -104,7 +104,7 @@ def funnel_figure(
     log_expected: bool = False,
     max_labels: int = 40,
 ) -> Figure:
-    """Funnel plot of O/E against E with exact Poisson limits.
+    """Funnel plot of O/E against E with exact (stepped) Poisson limits.
 
     Parameters
     ----------

@@ -42,6 +42,7 @@ __all__ = [
     "model_section",
     "overview_section",
     "program_anchor",
+    "reach_text",
     "scale_section",
     "table_section",
     "verdict_html",
@@ -130,7 +131,26 @@ def _prior_text(prior: dict) -> str:
     shape, rate = prior.get("shape"), prior.get("rate")
     mean = prior.get("mean", shape / rate if shape and rate else None)
     method = str(prior.get("method", "")).replace("_", " ")
+    if prior.get("method") == "hierarchical":
+        return (f"hierarchical: a mixture of {prior.get('components')} gammas over the "
+                f"hyperposterior (mean {_num(mean, 3)}, sd {_num(prior.get('sd'), 3)})")
     return f"gamma, shape {_num(shape, 3)}, rate {_num(rate, 3)} (mean {_num(mean, 3)}); {method}"
+
+
+def _network_text(network: dict | None) -> str:
+    if not network:
+        return MISSING
+    return (f"O/E {_num(network['oe'])} ({network.get('level', 0.95):.0%} exact "
+            f"{_num(network['oe_lower'])}–{_num(network['oe_upper'])}); exact test of O/E = 1: "
+            f"p = {network['p_value']:.2g}")
+
+
+def _multiplicity_text(many: dict | None) -> str:
+    if not many:
+        return MISSING
+    return (f"{many['expected_false_flags']:.2f} of {many['programs_judged']} programs judged "
+            "would be called excess or favorable if every true hazard ratio were 1 "
+            f"(this network has {many['flags']})")
 
 
 def _rules_text(rules: dict) -> str:
@@ -168,6 +188,9 @@ def evaluated_section(data: EvaluationFolder, options: ReportOptions) -> Section
         ("Model fingerprint", model.get("fingerprint")),
         ("Prior", _prior_text(prior)),
         ("About the prior", prior.get("note")),
+        ("Shrunk towards", prior.get("centre", MISSING)),
+        ("Whole network", _network_text(run.get("network"))),
+        ("Expected false flags", _multiplicity_text(run.get("multiplicity"))),
         ("Credible intervals", f"{run.get('credible_level', 0.95):.0%}"),
         ("Verdict rules", _rules_text(run["rules"])),
         ("Records", f"{_count(counts.get('read'), options)} read, "
@@ -203,6 +226,7 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
         "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
                     for i, code in enumerate(programs["program"])],
         "verdict": [verdict_html(v, palette) for v in programs["verdict"]],
+        "reach": [reach_text(r) for _, r in programs.iterrows()],
         "recipients": counts_text(programs["recipients"], options),
         "observed": counts_text(programs["observed"], options),
         "expected": [_num(e, 1) for e in programs["expected"]],
@@ -221,7 +245,9 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     rules, horizon = data.run["rules"], data.run["horizon_days"]
     level = data.run.get("credible_level", 0.95)
     headers = {
-        "program": "Program", "verdict": "Verdict", "recipients": "Recipients",
+        "program": "Program", "verdict": "Verdict",
+        "reach": f"Could be called ({rules.get('power', 0.8):.0%} chance, true HR)",
+        "recipients": "Recipients",
         "observed": "Observed (O)", "expected": "Expected (E)", "oe": "O/E (exact 95%)",
         "hr": f"Hazard ratio ({level:.0%} credible)",
         "p_above": f"P(HR\u00a0>\u00a0{rules.get('upper_margin', 1.0):g})",
@@ -230,13 +256,16 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
         "expected_survival": f"Expected survival at {horizon} days",
     }
     table = table_html(_glance_frame(data, options), headers=headers,
-                       numeric=[c for c in headers if c not in ("program", "verdict")],
+                       numeric=[c for c in headers if c not in ("program", "verdict", "reach")],
                        wide=True)
+    centre = data.run["prior"].get("centre", "the prior's mean")
     intro = Markup(
         "<p>{} The hazard ratio is the observed-to-expected ratio after shrinkage towards "
-        "the network: small programs are pulled further towards 1. Programs are listed by "
-        "code.</p>"
-    ).format(_verdict_counts(data.programs["verdict"]))
+        "{}: small programs are pulled further towards it. Programs are listed by code. "
+        "“Could be called” gives, for each program, the true hazard ratios at which it "
+        "would be called excess or favorable with the stated chance: a consistent verdict "
+        "where favorable is out of reach says little.</p>"
+    ).format(_verdict_counts(data.programs["verdict"]), centre)
     return Section("Programs at a glance", _join(intro, Markup(table)), anchor="programs")
 
 
@@ -250,8 +279,10 @@ def scale_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     levels = " and ".join(f"{lv * 100:g}%" for lv in FUNNEL_LEVELS)
     funnel_caption = (
         f"Each point is a program's observed-to-expected ratio against its expected events. "
-        f"The lines are exact Poisson limits ({levels}) within which O/E would fall if the "
-        "program's hazard were the reference's; they narrow as E grows."
+        f"The lines are exact Poisson limits ({levels}): if a program's hazard were the "
+        "reference's, its O/E would lie above the upper line, or below the lower one, with "
+        "a chance of at most half of one minus the level (2.5% and 0.1%) at every E. They "
+        "step because events are whole numbers, and narrow as E grows."
     )
     if no_e:
         funnel_caption += f" Not drawn (no expected events): {', '.join(no_e)}."
@@ -278,14 +309,18 @@ def scale_section(data: EvaluationFolder, options: ReportOptions) -> Section:
 # -- 5. Program by program -----------------------------------------------------------------
 
 
+def _count_or_none(value) -> int | None:
+    return None if value is None or pd.isna(value) else int(value)
+
+
 def what_if_text(row: pd.Series, min_expected: float = 1.0) -> str:
-    """Say in words how far a program's verdict is from changing.
+    """Say in words how far a program's verdict is from changing, in each direction.
 
     Parameters
     ----------
     row : pandas.Series
         One row of programs.csv (``verdict``, ``expected``, ``events_to_excess``,
-        ``events_to_favorable``).
+        ``events_to_favorable``, ``events_more_to_change``, ``events_fewer_to_change``).
     min_expected : float, default 1.0
         The rules' minimum E for a verdict.
     """
@@ -293,21 +328,59 @@ def what_if_text(row: pd.Series, min_expected: float = 1.0) -> str:
     if verdict == "too_little_data":
         return (f"Too few expected events for a verdict (E = {expected:.2f}, below the minimum "
                 f"of {min_expected:g}); what-if distances are not given.")
-    to_excess, to_favorable = row["events_to_excess"], row["events_to_favorable"]
+    to_excess = _count_or_none(row["events_to_excess"])
+    to_favorable = _count_or_none(row["events_to_favorable"])
+    more = _count_or_none(row.get("events_more_to_change"))
+    fewer = _count_or_none(row.get("events_fewer_to_change"))
+    held = f"At the same expected count (E = {expected:.1f}) and with the prior held fixed, "
     if verdict == "excess":
-        first = "The verdict is excess now"
-    elif pd.isna(to_excess):
-        first = "No number of additional events would make the verdict excess"
-    else:
-        first = (f"{plural(int(to_excess), 'more event')} at the current expected count "
-                 f"(E = {expected:.1f}) would make the verdict excess")
+        if fewer is None:
+            return held + "no smaller number of events would change the excess verdict."
+        goes_to = "favorable" if fewer == to_favorable else "consistent"
+        text = f"{plural(fewer, 'fewer event')} would make the verdict {goes_to}"
+        if to_favorable is not None and goes_to == "consistent":
+            text += f", and {to_favorable} fewer would make it favorable"
+        elif to_favorable is None:
+            text += "; no count would make it favorable"
+        return held + text + "."
     if verdict == "favorable":
-        second = "it is favorable now"
-    elif pd.isna(to_favorable):
-        second = "even no events at all would not make it favorable"
+        goes_to = "excess" if more == to_excess else "consistent"
+        text = f"{plural(more, 'more event')} would make the verdict {goes_to}"
+        if goes_to == "consistent":
+            text += f", and {to_excess} more would make it excess"
+        return held + text + "."
+    text = f"{plural(to_excess, 'more event')} would make the verdict excess; "
+    if to_favorable is None:
+        text += ("favorable is out of reach here: even no events at all would not make it "
+                 "favorable")
     else:
-        second = f"{int(to_favorable)} fewer would make it favorable"
-    return f"{first}; {second}."
+        text += f"{to_favorable} fewer would make it favorable"
+    return held + text + "."
+
+
+def reach_text(row: pd.Series) -> str:
+    """Which verdicts a program can reach and the true hazard ratios at which it would be.
+
+    Parameters
+    ----------
+    row : pandas.Series
+        One row of programs.csv (``verdict``, ``detectable_hr_excess``,
+        ``detectable_hr_favorable``, ``favorable_reachable``).
+
+    Returns
+    -------
+    str
+        E.g. ``"excess if HR ≥ 1.49; favorable if HR ≤ 0.61"`` (non-breaking spaces inside
+        each part), or ``"…; favorable out of reach"``; an en dash for too little data.
+    """
+    if row["verdict"] == "too_little_data" or pd.isna(row.get("detectable_hr_excess")):
+        return MISSING
+    parts = [f"excess if HR ≥ {row['detectable_hr_excess']:.2f}"]
+    if bool(row.get("favorable_reachable")) and not pd.isna(row.get("detectable_hr_favorable")):
+        parts.append(f"favorable if HR ≤ {row['detectable_hr_favorable']:.2f}")
+    else:
+        parts.append("favorable out of reach")
+    return "; ".join(part.replace(" ", "\u00a0") for part in parts)
 
 
 def _at_risk_row(data: EvaluationFolder, code: str, options: ReportOptions) -> list[str]:
@@ -352,8 +425,12 @@ def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
         _count(row["observed"], options), row["expected"],
         _interval(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
         _interval(row["hr_mean"], row["hr_lower"], row["hr_upper"]))
-    what_if = Markup("<p>{}</p>").format(
-        what_if_text(row, data.run["rules"].get("min_expected", 1.0)))
+    rules = data.run["rules"]
+    what_if = Markup("<p>{}</p><p>What this program can show: {} (true hazard ratios at which "
+                     "the verdict would be reached with a {:.0%} chance, under the rules in "
+                     "force).</p>").format(
+        what_if_text(row, rules.get("min_expected", 1.0)), reach_text(row),
+        rules.get("power", 0.8))
     return Markup('<div class="program" id="{}"><h3>{}</h3>{}{}<div class="pair">{}</div>'
                   "</div>").format(
         program_anchor(position, code), code, facts, what_if,

@@ -2,8 +2,8 @@
 
 Everything here treats the expected count E as fixed and known, so the observed count O is
 Poisson(HR * E). All functions are vectorised over arrays of O and E (numpy broadcasting) and
-use scipy.stats for the distributions; only the interpolated funnel limit, which scipy does
-not offer, is written out here.
+use scipy.stats for the distributions; only the interpolated funnel limit (an option; the
+default funnel limits are exact quantiles), which scipy does not offer, is written out here.
 """
 
 from __future__ import annotations
@@ -16,11 +16,13 @@ from scipy import stats
 from casemix.errors import InputError
 
 __all__ = [
+    "FUNNEL_METHODS",
     "as_observed_expected",
     "check_level",
     "exact_p_values",
     "funnel_limits",
     "garwood_interval",
+    "network_oe",
     "oe_interval",
 ]
 
@@ -209,12 +211,22 @@ def _interpolated_quantile(p: float, expected: np.ndarray) -> np.ndarray:
     return r - step
 
 
-def funnel_limits(expected: Any, level: float = 0.95) -> tuple[np.ndarray, np.ndarray]:
+FUNNEL_METHODS = ("exact", "interpolated")
+
+
+def funnel_limits(
+    expected: Any, level: float = 0.95, method: str = "exact"
+) -> tuple[np.ndarray, np.ndarray]:
     """Funnel-plot control limits for O/E under the null hypothesis HR = 1.
 
-    O ~ Poisson(E). The lower and upper limits are the (1 - level)/2 and (1 + level)/2
-    quantiles of O with the Poisson CDF interpolated between integers (so that the funnel is
-    smooth in E), divided by E; the lower limit is clipped at 0.
+    O ~ Poisson(E). ``"exact"`` (default): the limits are r_lo / E and r_hi / E with r_lo,
+    r_hi the (1 - level)/2 and (1 + level)/2 Poisson quantiles (smallest r with
+    P(O <= r) >= p), so that P(O/E > upper) <= (1 - level)/2 and P(O/E < lower) <=
+    (1 - level)/2 at every E; they step with E because counts are whole numbers.
+    ``"interpolated"``: the same quantiles with the CDF interpolated linearly between r - 1
+    and r (Spiegelhalter 2005), smooth in E but not exact: at E = 1 a program at HR = 1 lies
+    above the 95% upper limit with probability 0.08, not 0.025. The lower limit is clipped
+    at 0.
 
     Parameters
     ----------
@@ -222,15 +234,57 @@ def funnel_limits(expected: Any, level: float = 0.95) -> tuple[np.ndarray, np.nd
         Expected events, > 0 (for example a grid to draw the funnel on).
     level : float, default 0.95
         Coverage of the limits, strictly between 0 and 1 (0.95 and 0.998 are usual).
+    method : {"exact", "interpolated"}, default "exact"
 
     Returns
     -------
     lower, upper : ndarray of float, same shape as `expected`
         Limits on the O/E scale.
+
+    References
+    ----------
+    Spiegelhalter, D. J. (2005). Funnel plots for comparing institutional performance.
+    Statistics in Medicine 24, 1185-1202.
     """
     level = check_level(level)
+    if method not in FUNNEL_METHODS:
+        raise InputError(f"funnel method must be one of {', '.join(FUNNEL_METHODS)}; got "
+                         f"{method!r}.")
     values = _as_expected(expected, positive=True)
     tail = (1.0 - level) / 2.0
-    lower = np.maximum(_interpolated_quantile(tail, values) / values, 0.0)
-    upper = _interpolated_quantile(1.0 - tail, values) / values
-    return lower, upper
+    if method == "exact":
+        low, high = stats.poisson.ppf(tail, values), stats.poisson.ppf(1.0 - tail, values)
+    else:
+        low, high = _interpolated_quantile(tail, values), _interpolated_quantile(1 - tail, values)
+    return np.maximum(low / values, 0.0), high / values
+
+
+def network_oe(observed: Any, expected: Any, level: float = 0.95) -> dict[str, float]:
+    """The network's overall O/E with its exact interval and an exact test of HR = 1.
+
+    Parameters
+    ----------
+    observed, expected : array_like, shape (n,)
+        Per program; summed over the network.
+    level : float, default 0.95
+
+    Returns
+    -------
+    dict
+        ``observed``, ``expected``, ``oe``, ``oe_lower``, ``oe_upper`` (Garwood limits of the
+        total over the total E) and ``p_value``: the two-sided exact Poisson p-value of the
+        total against the total E, min(1, 2 min(P(Y >= O), P(Y <= O))) (the doubled
+        one-sided test, common practice).
+    """
+    counts, values = as_observed_expected(observed, expected)
+    total_o, total_e = float(counts.sum()), float(values.sum())
+    lower, upper = oe_interval([total_o], [total_e], level)
+    p_more, p_fewer = exact_p_values([total_o], [total_e])
+    return {
+        "observed": int(total_o),
+        "expected": total_e,
+        "oe": total_o / total_e if total_e > 0 else float("nan"),
+        "oe_lower": float(lower[0]),
+        "oe_upper": float(upper[0]),
+        "p_value": float(min(1.0, 2.0 * min(p_more[0], p_fewer[0]))),
+    }

@@ -7,12 +7,17 @@ negative-binomial marginal distribution
 .. math:: \\ln p(O) = \\ln\\Gamma(a+O) - \\ln\\Gamma(a) - \\ln O! + a\\ln\\frac{b}{b+E}
           + O\\ln\\frac{E}{b+E}.
 
-The prior is either fixed by the user or estimated by empirical Bayes: maximising the summed
-marginal log-likelihood over programs. scipy does the optimising and root finding; the
-profile likelihood over the shape is written out here because the estimate can run to the
-boundary a -> infinity (no spread of hazard ratios beyond Poisson chance), which a plain
-optimiser reports as a huge finite number. That case is detected and replaced by a documented
-fallback prior instead.
+The prior is fixed by the user, estimated by plug-in empirical Bayes (maximising the summed
+marginal log-likelihood over programs), or integrated over with a hyperprior (see
+`casemix.stats.hierarchy`). In the last case the prior is a finite mixture of gammas with
+weights w_k (the quadrature's hyperposterior weights), and each program's posterior is the
+mixture of Gamma(a_k + O, b_k + E) with the same weights; a single gamma is the mixture of one.
+scipy does the optimising and root finding; the profile likelihood over the shape is written
+out here because the plug-in estimate can run to the boundary a -> infinity (no spread of
+hazard ratios beyond Poisson chance), which a plain optimiser reports as a huge finite number.
+In plug-in empirical Bayes that case is detected and replaced by a documented fallback prior;
+the hierarchical prior needs no fallback. Quantiles of a mixture are found by Brent's method
+on its CDF (scipy has no mixture distribution).
 """
 
 from __future__ import annotations
@@ -35,10 +40,13 @@ __all__ = [
     "empirical_bayes_prior",
     "fixed_prior",
     "log_marginal",
+    "mixture_cdf",
+    "mixture_quantile",
+    "mixture_sf",
     "posterior",
 ]
 
-PRIOR_METHODS = ("fixed", "empirical_bayes", "empirical_bayes_fallback")
+PRIOR_METHODS = ("fixed", "empirical_bayes", "empirical_bayes_fallback", "hierarchical")
 MIN_PROGRAMS = 3
 # Search range of the prior shape below max_shape; a shape of 1e-4 (prior sd 100) is far
 # wider than any real spread of hazard ratios.
@@ -63,13 +71,15 @@ class Prior:
     Attributes
     ----------
     shape, rate : float
-        Gamma shape a and rate b (> 0); prior mean a / b, variance a / b**2.
-    method : {"fixed", "empirical_bayes", "empirical_bayes_fallback"}
-        Given by the user, estimated from the programs, or the fallback used because the
-        estimate could not be made (see `note`).
+        Gamma shape a and rate b (> 0); prior mean a / b, variance a / b**2. For a mixture
+        (``components`` given) they are the single gamma with the mixture's mean and
+        variance, a summary only: the components are what is used.
+    method : {"fixed", "empirical_bayes", "empirical_bayes_fallback", "hierarchical"}
+        Given by the user, estimated from the programs (plug-in), the fallback used because
+        the plug-in estimate could not be made (see `note`), or integrated over a hyperprior.
     free_mean : bool, default False
-        For the empirical-Bayes methods: whether the prior mean was estimated (True) or held
-        at 1, the reference population being the standard (False). False for a fixed prior.
+        For the estimated methods: whether the prior mean was estimated (True) or held at 1,
+        the reference population being the standard (False). False for a fixed prior.
     log_marginal : float or None, default None
         Summed negative-binomial log marginal likelihood of the programs used in the
         estimate, at this prior. None for a fixed prior, which is chosen without the data.
@@ -77,6 +87,12 @@ class Prior:
         True when the estimate ran to a -> infinity (no spread beyond Poisson chance).
     note : str, default ""
         One plain-words sentence or two for the report.
+    components : tuple of (shape, rate, weight), default ()
+        A mixture of gammas (weights > 0 summing to 1); empty for the single Gamma(shape,
+        rate).
+    hyperprior : dict or None, default None
+        For ``"hierarchical"``: the hyperprior and quadrature used, and summaries of the
+        hyperposterior (written to ``run.json``).
     """
 
     shape: float
@@ -86,6 +102,8 @@ class Prior:
     log_marginal: float | None = None
     at_boundary: bool = False
     note: str = ""
+    components: tuple[tuple[float, float, float], ...] = ()
+    hyperprior: dict | None = None
 
     def __post_init__(self) -> None:
         _positive(self.shape, "prior shape")
@@ -94,11 +112,41 @@ class Prior:
             raise InputError(
                 f"prior method must be one of {', '.join(PRIOR_METHODS)}; got {self.method!r}."
             )
+        if self.components:
+            a, b, w = self.arrays()
+            if not (np.all(a > 0) and np.all(b > 0) and np.all(w > 0)):
+                raise InputError("prior mixture components need shape, rate and weight > 0.")
+            if abs(float(w.sum()) - 1.0) > 1e-9:
+                raise InputError(f"prior mixture weights must sum to 1, got {w.sum()!r}.")
+
+    def arrays(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Component shapes, rates and weights as arrays (one component for a single gamma)."""
+        if not self.components:
+            return np.array([self.shape]), np.array([self.rate]), np.array([1.0])
+        a, b, w = (np.array(column, dtype=float) for column in zip(*self.components, strict=True))
+        return a, b, w
 
     @property
     def mean(self) -> float:
-        """Prior mean of the hazard ratio, shape / rate."""
-        return self.shape / self.rate
+        """Prior mean of the hazard ratio (for a mixture, the weighted mean of a_k / b_k)."""
+        a, b, w = self.arrays()
+        return float(np.sum(w * a / b))
+
+    @property
+    def sd(self) -> float:
+        """Prior standard deviation of the hazard ratio (of the whole mixture)."""
+        a, b, w = self.arrays()
+        second = np.sum(w * a * (a + 1.0) / b**2)
+        return float(math.sqrt(max(second - self.mean**2, 0.0)))
+
+    @property
+    def centre(self) -> str:
+        """What the hazard ratios are shrunk towards, in words."""
+        if self.method != "fixed" and not self.free_mean:
+            return "the reference (prior mean fixed at 1)"
+        if self.method == "fixed":
+            return f"the fixed prior's mean, {self.mean:.3g}"
+        return f"the network's estimated mean, {self.mean:.3g}"
 
     def to_dict(self) -> dict[str, Any]:
         """The JSON object written to ``run.json`` under ``"prior"``."""
@@ -111,6 +159,10 @@ class Prior:
             "log_marginal": None if self.log_marginal is None else float(self.log_marginal),
             "at_boundary": bool(self.at_boundary),
             "note": self.note,
+            "sd": float(self.sd),
+            "centre": self.centre,
+            "components": len(self.components) or 1,
+            "hyperprior": self.hyperprior,
         }
 
 
@@ -369,6 +421,81 @@ def _index_of(values: Any, size: int) -> pd.Index:
     return pd.RangeIndex(size)
 
 
+def _components(prior: Prior, o: np.ndarray, e: np.ndarray):
+    """Posterior component shapes and rates, shape (n, K), and the weights, shape (K,)."""
+    a, b, w = prior.arrays()
+    return a[None, :] + o[:, None], b[None, :] + e[:, None], w
+
+
+def mixture_sf(x: Any, prior: Prior, observed: Any, expected: Any) -> np.ndarray:
+    """P(HR > x) under each program's posterior (a mixture of gammas), vectorised.
+
+    Parameters
+    ----------
+    x : float or array_like, shape (n,)
+    prior : Prior
+    observed, expected : array_like, shape (n,)
+        Validated counts (whole numbers >= 0) and expected events (>= 0).
+
+    Returns
+    -------
+    ndarray of float, shape (n,)
+    """
+    o, e = np.atleast_1d(np.asarray(observed, float)), np.atleast_1d(np.asarray(expected, float))
+    shape, rate, w = _components(prior, o, e)
+    x = np.broadcast_to(np.asarray(x, dtype=float), o.shape)[:, None]
+    return special.gammaincc(shape, x * rate) @ w
+
+
+def mixture_cdf(x: Any, prior: Prior, observed: Any, expected: Any) -> np.ndarray:
+    """P(HR < x) under each program's posterior; see `mixture_sf`."""
+    o, e = np.atleast_1d(np.asarray(observed, float)), np.atleast_1d(np.asarray(expected, float))
+    shape, rate, w = _components(prior, o, e)
+    x = np.broadcast_to(np.asarray(x, dtype=float), o.shape)[:, None]
+    return special.gammainc(shape, x * rate) @ w
+
+
+def mixture_quantile(
+    q: float, shapes: Any, rates: Any, weights: Any | None = None
+) -> float:
+    """The q-quantile of a mixture of Gamma(shape_k, rate_k) laws with weights w_k.
+
+    Found by Brent's method on the mixture CDF, bracketed by Cantelli's inequality around the
+    mixture's mean mu and sd s: P(X <= mu - k s) <= 1 / (1 + k**2), so the quantile lies in
+    [max(0, mu - s sqrt((1 - q) / q)), mu + s sqrt(q / (1 - q))].
+
+    Parameters
+    ----------
+    q : float
+        In (0, 1).
+    shapes, rates : array_like of float, shape (K,)
+        Broadcast against each other.
+    weights : array_like of float, shape (K,), optional
+        Summing to 1; default equal weights.
+
+    Returns
+    -------
+    float
+    """
+    shapes, rates = np.broadcast_arrays(np.asarray(shapes, float), np.asarray(rates, float))
+    shapes, rates = shapes.ravel(), rates.ravel()
+    w = np.full(shapes.size, 1.0 / shapes.size) if weights is None else np.asarray(weights)
+    if shapes.size == 1:
+        return float(stats.gamma.ppf(q, shapes[0], scale=1.0 / rates[0]))
+    mean = float(w @ (shapes / rates))
+    sd = math.sqrt(max(float(w @ (shapes * (shapes + 1.0) / rates**2)) - mean**2, 0.0))
+    if sd <= 1e-12 * mean:
+        return mean
+    slack = 1.0 + 1e-6
+    low = max(0.0, mean - slack * sd * math.sqrt((1.0 - q) / q))
+    high = mean + slack * sd * math.sqrt(q / (1.0 - q))
+
+    def gap(x: float) -> float:
+        return float(special.gammainc(shapes, x * rates) @ w) - q
+
+    return optimize.brentq(gap, low, high, xtol=1e-13, rtol=4 * np.finfo(float).eps)
+
+
 def posterior(
     observed: Any,
     expected: Any,
@@ -378,7 +505,11 @@ def posterior(
     upper_margin: float = 1.0,
     lower_margin: float = 1.0,
 ) -> pd.DataFrame:
-    """Posterior Gamma(a + O, b + E) of each program's hazard ratio, summarised.
+    """Posterior of each program's hazard ratio, summarised.
+
+    For a single gamma prior the posterior is Gamma(a + O, b + E); for a mixture prior
+    (hierarchical) it is the mixture of Gamma(a_k + O, b_k + E) with the prior's weights,
+    whose quantiles are found by root-finding on its CDF.
 
     Parameters
     ----------
@@ -387,7 +518,7 @@ def posterior(
     expected : array_like of float, shape (n,)
         Expected events per program, >= 0 (E = 0 leaves the rate at the prior's).
     prior : Prior
-        The gamma prior (fixed or empirical Bayes).
+        The prior (fixed, plug-in empirical Bayes or hierarchical).
     level : float, default 0.95
         Level of the equal-tailed credible interval.
     upper_margin, lower_margin : float, default 1.0
@@ -398,8 +529,9 @@ def posterior(
     -------
     pandas.DataFrame, shape (n, 9)
         One row per program in input order, columns ``hr_mean``, ``hr_median``, ``hr_lower``,
-        ``hr_upper``, ``p_above``, ``p_below``, ``weight`` (= E / (b + E), the weight of O/E
-        in the posterior mean), ``post_shape``, ``post_rate``.
+        ``hr_upper``, ``p_above``, ``p_below``, ``weight`` (the posterior mean of
+        E / (b + E), the weight of O/E in the posterior mean), ``post_shape``, ``post_rate``
+        (the posterior gamma's parameters; NaN for a mixture prior, which has no single one).
     """
     o, e = as_observed_expected(observed, expected)
     o, e = np.atleast_1d(o), np.atleast_1d(e)
@@ -408,17 +540,26 @@ def posterior(
     tail = (1.0 - check_level(level)) / 2.0
     upper_margin = _positive(upper_margin, "upper_margin")
     lower_margin = _positive(lower_margin, "lower_margin")
-    shape, rate = prior.shape + o, prior.rate + e
-    dist = stats.gamma(shape, scale=1.0 / rate)
+    shape, rate, w = _components(prior, o, e)
+    if w.size == 1:
+        dist = stats.gamma(shape[:, 0], scale=1.0 / rate[:, 0])
+        median, lower, upper = dist.median(), dist.ppf(tail), dist.isf(tail)
+        post_shape, post_rate = shape[:, 0], rate[:, 0]
+    else:
+        median, lower, upper = (
+            np.array([mixture_quantile(q, shape[i], rate[i], w) for i in range(o.size)])
+            for q in (0.5, tail, 1.0 - tail)
+        )
+        post_shape = post_rate = np.full(o.size, np.nan)
     columns = {
-        "hr_mean": shape / rate,
-        "hr_median": dist.median(),
-        "hr_lower": dist.ppf(tail),
-        "hr_upper": dist.isf(tail),
-        "p_above": dist.sf(upper_margin),
-        "p_below": dist.cdf(lower_margin),
-        "weight": e / rate,
-        "post_shape": shape,
-        "post_rate": rate,
+        "hr_mean": (shape / rate) @ w,
+        "hr_median": median,
+        "hr_lower": lower,
+        "hr_upper": upper,
+        "p_above": mixture_sf(upper_margin, prior, o, e),
+        "p_below": mixture_cdf(lower_margin, prior, o, e),
+        "weight": (e[:, None] / rate) @ w,
+        "post_shape": post_shape,
+        "post_rate": post_rate,
     }
     return pd.DataFrame(columns, index=_index_of(observed, o.size))
