@@ -8,6 +8,9 @@ import numpy as np
 import pandas as pd
 import pytest
 from audit_helpers import ROSSI_FULL, ROSSI_SMALL
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import CoxPHFitter
 from lifelines.statistics import proportional_hazard_test
 from statsmodels.duration.hazard_regression import PHReg, PHRegResults

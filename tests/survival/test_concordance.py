@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines.utils import concordance_index
 
 from casemix.errors import InputError

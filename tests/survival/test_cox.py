@@ -15,6 +15,9 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import pytest
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import CoxPHFitter
 from lifelines.datasets import (
     load_kidney_transplant,

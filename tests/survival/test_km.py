@@ -10,6 +10,9 @@ import warnings
 
 import numpy as np
 import pytest
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import KaplanMeierFitter
 from lifelines.datasets import load_leukemia, load_lung, load_rossi
 

@@ -198,11 +198,10 @@ def _survival_cell(row: pd.Series, column: str) -> str:
 
 
 def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFrame:
-    programs, palette = data.programs, verdict_colours()
+    programs = data.programs
     return pd.DataFrame({
-        "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
-                    for i, code in enumerate(programs["program"])],
-        "verdict": [verdict_html(v, palette) for v in programs["verdict"]],
+        "program": programs["program"].to_numpy(object),
+        "verdict": programs["verdict"].to_numpy(object),
         "recipients": counts_text(programs["recipients"], options),
         "observed": counts_text(programs["observed"], options),
         "expected": [_num(e, 1) for e in programs["expected"]],
@@ -214,6 +213,17 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
                               for _, r in programs.iterrows()],
         "expected_survival": [_num(s, 3) for s in programs["expected_survival"]],
     })
+
+
+def _glance_html(data: EvaluationFolder) -> dict[str, list[Markup]]:
+    """The program links and verdict chips of the glance table, kept out of the frame."""
+    palette = verdict_colours()
+    codes = data.programs["program"]
+    return {
+        "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
+                    for i, code in enumerate(codes)],
+        "verdict": [verdict_html(v, palette) for v in data.programs["verdict"]],
+    }
 
 
 def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
@@ -231,7 +241,7 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     }
     table = table_html(_glance_frame(data, options), headers=headers,
                        numeric=[c for c in headers if c not in ("program", "verdict")],
-                       wide=True)
+                       wide=True, html=_glance_html(data))
     intro = Markup(
         "<p>{} The hazard ratio is the observed-to-expected ratio after shrinkage towards "
         "the network: small programs are pulled further towards 1. Programs are listed by "
