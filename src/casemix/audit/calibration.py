@@ -124,7 +124,7 @@ def calibration_by_size(programs: pd.DataFrame) -> pd.DataFrame:
     if missing:
         raise InputError(f"the programs table lacks column(s) {sorted(missing)}")
     if len(programs) < len(SIZE_GROUPS):
-        raise InputError(f"size groups need at least {len(SIZE_GROUPS)} programs")
+        raise InputError(f"size groups need at least {plural(len(SIZE_GROUPS), 'program')}")
     # rank first so that equal sizes cannot make two thirds coincide
     rank = programs["recipients"].rank(method="first").to_numpy()
     codes = pd.qcut(rank, len(SIZE_GROUPS), labels=False)

@@ -356,9 +356,10 @@ def _program_figures(data: EvaluationFolder, code: str, options: ReportOptions) 
 def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
                    options: ReportOptions, palette: dict[str, str]) -> Markup:
     code = row["program"]
-    facts = Markup("<p>{} · {} recipients · observed {} · expected {:.1f} · O/E {} · hazard "
+    facts = Markup("<p>{} · {} {} · observed {} · expected {:.1f} · O/E {} · hazard "
                    "ratio {}</p>").format(
         verdict_html(row["verdict"], palette), _count(row["recipients"], options),
+        "recipient" if row["recipients"] == 1 else "recipients",
         _count(row["observed"], options), row["expected"],
         _interval(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
         _interval(row["hr_mean"], row["hr_lower"], row["hr_upper"]))
