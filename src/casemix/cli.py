@@ -17,8 +17,6 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 from rich.console import Console
-from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
-from rich.table import Table
 
 import casemix
 from casemix.errors import CasemixError, CasemixWarning, plural
@@ -96,6 +94,8 @@ def _show_warnings(caught) -> None:
 @contextmanager
 def _steps(total: int) -> Iterator[Callable[[str], None]]:
     """A progress bar over named steps, shown only when stderr is a terminal."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
     progress = Progress(
         TextColumn("{task.description:<28}"),
         BarColumn(),
@@ -213,6 +213,8 @@ def _reason_counts(exclusions: pd.DataFrame) -> pd.DataFrame:
 
 
 def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:
+    from rich.table import Table
+
     table = Table(title=title, title_justify="left")
     for name in frame.columns:
         table.add_column(str(name), justify="left" if name == key else "right")
@@ -320,6 +322,8 @@ def _write_report(folder: Path, out_file: Path | None = None, suppress_below=Non
 def _summary(result, folder: Path, report: bool) -> None:
     programs = result.programs
     level = f"{100 * result.rules.credible_level:g}%"
+    from rich.table import Table
+
     table = Table(title="Programs (HR: shrunken hazard ratio)", title_justify="left", box=None)
     for name, justify in [
         ("program", "left"),
