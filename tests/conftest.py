@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 import pytest
-from lifelines.datasets import load_rossi
+from oracles import lifelines
 
 from casemix.survival import fit_cox
 
@@ -12,7 +12,7 @@ ROSSI_FULL = ("fin", "age", "race", "wexp", "mar", "paro", "prio")
 
 @pytest.fixture(scope="session")
 def rossi():
-    return load_rossi()
+    return lifelines("lifelines.datasets").load_rossi()
 
 
 @pytest.fixture(scope="session")

@@ -19,6 +19,10 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pytest
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import CoxPHFitter
 from lifelines.datasets import load_rossi
 

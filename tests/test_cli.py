@@ -12,8 +12,11 @@ from __future__ import annotations
 
 import importlib.metadata
 import json
+import os
 import re
 import shutil
+import subprocess
+import sys
 import traceback
 from html.parser import HTMLParser
 from pathlib import Path
@@ -523,3 +526,36 @@ def test_help_of_every_command_shows_an_example_using_its_own_options(command):
     listing = result.output.split("\nOptions:\n", 1)[1]
     for option in options:  # so that an example never shows an option the command lacks
         assert re.search(rf"^\s+{option}\b", listing, re.M), (command, option)
+
+
+HEAVY = ("pandas", "scipy", "statsmodels", "matplotlib")
+
+
+@pytest.mark.parametrize("flag", ["--help", "--version"])
+def test_help_and_version_load_no_heavy_library(flag):
+    # A fresh interpreter runs the console script's entry point and then reports which of the
+    # heavy libraries it loaded: a quick start-up is loading none of them (timing is in the
+    # README, measured with `python -X importtime`, never in a test).
+    probe = (
+        "import sys\n"
+        f"sys.argv = ['casemix', {flag!r}]\n"
+        "from casemix.cli import main\n"
+        "try:\n    main()\nexcept SystemExit:\n    pass\n"
+        f"print('LOADED', sorted(m for m in {HEAVY!r} if m in sys.modules))\n"
+    )
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)}
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                          env=env, timeout=120, check=False)
+    assert done.returncode == 0, done.stderr
+    assert "casemix" in done.stdout
+    assert done.stdout.splitlines()[-1] == "LOADED []"
+
+
+def test_the_probe_sees_a_heavy_library_when_one_is_loaded():
+    # The same probe after a command that needs pandas: the check can fail.
+    probe = ("import sys\nimport casemix\ncasemix.read_records\n"
+             f"print(sorted(m for m in {HEAVY!r} if m in sys.modules))\n")
+    env = {**os.environ, "PYTHONPATH": os.pathsep.join(sys.path)}
+    done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                          env=env, timeout=120, check=False)
+    assert "pandas" in done.stdout, done.stderr

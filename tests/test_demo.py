@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from lifelines import CoxPHFitter, KaplanMeierFitter
+from oracles import lifelines
 
 from casemix import demo
 from casemix.data.spec import load_spec
@@ -62,7 +62,7 @@ def _graft_failure(frame: pd.DataFrame, cutoff: pd.Timestamp) -> pd.DataFrame:
 
 
 def _one_year_failure(outcome: pd.DataFrame) -> float:
-    km = KaplanMeierFitter().fit(outcome["time"], outcome["event"])
+    km = lifelines().KaplanMeierFitter().fit(outcome["time"], outcome["event"])
     return 1.0 - float(km.survival_function_at_times(365).iloc[0])
 
 
@@ -122,6 +122,20 @@ def test_csv_reads_back_to_the_frame(network, tmp_path):
     text = paths["cohort"].read_text(encoding="utf-8")
     assert text.splitlines()[0] == ",".join(demo.COLUMNS)
     assert "NaT" not in text and "nan" not in text.lower()  # missing values are empty fields
+
+
+def test_dates_are_built_without_a_float_cast_and_equal_pandas_own_cast():
+    # Reference: pandas.to_datetime(float days, unit="D"), the cast the demo used before; the
+    # demo's dates are whole days with NaN for "no date" (2016-2025 in the scenario).
+    rng = np.random.default_rng(3)
+    days = rng.integers(16_000, 20_500, size=2_000).astype(float)
+    days[rng.random(days.size) < 0.3] = np.nan
+    ours = pd.DatetimeIndex(demo._dates(days))
+    theirs = pd.to_datetime(days, unit="D")
+    pd.testing.assert_index_equal(ours, theirs)
+    assert ours.isna().sum() == np.isnan(days).sum() > 0
+    with np.errstate(all="raise"):  # no floating-point step that could raise
+        demo._dates(days)
 
 
 def test_write_demo_refuses_a_file_as_folder(tmp_path):
@@ -340,7 +354,7 @@ def test_lost_to_followup_share(network):
 
 def test_one_and_three_year_graft_failure(network):
     outcome = _graft_failure(_clean(network, "reference"), _cutoff(network, "reference"))
-    km = KaplanMeierFitter().fit(outcome["time"], outcome["event"])
+    km = lifelines().KaplanMeierFitter().fit(outcome["time"], outcome["event"])
     one, three = 1.0 - km.survival_function_at_times([365, 1095]).to_numpy()
     # Design targets of the scenario (the brief): one-year 6-10%, three-year 15-20%.
     assert 0.06 <= one <= 0.10
@@ -353,7 +367,7 @@ def test_lifelines_cox_recovers_true_covariate_effects(network):
     data = data.assign(program=frame["program"]).dropna()
     # Reference library: lifelines CoxPHFitter (Efron ties), stratified by program so that
     # the programs' own hazard ratios do not leak into the covariate effects.
-    fit = CoxPHFitter().fit(data, "time", "event", strata=["program"])
+    fit = lifelines().CoxPHFitter().fit(data, "time", "event", strata=["program"])
     truth = pd.Series(dict(demo.TRUE_LOG_HAZARD_RATIOS))
     z = (fit.params_[truth.index] - truth) / fit.standard_errors_[truth.index]
     assert z.abs().max() < 3.5, z.round(2).to_dict()
@@ -368,7 +382,7 @@ def test_lifelines_cox_recovers_program_hazard_ratios(network):
     data = _simple_encoding(frame).join(programs)
     data = data.join(_graft_failure(frame, _cutoff(network, "cohort"))).dropna()
     # Reference library: lifelines CoxPHFitter; LV01 (true HR 1.0) is the reference program.
-    fit = CoxPHFitter().fit(data, "time", "event")
+    fit = lifelines().CoxPHFitter().fit(data, "time", "event")
     truth = np.log(network.truth.set_index("program")["true_hr"].drop("LV01"))
     z = (fit.params_[truth.index] - truth) / fit.standard_errors_[truth.index]
     assert z.abs().max() < 3.0, z.round(2).to_dict()

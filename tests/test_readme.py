@@ -119,9 +119,19 @@ def test_test_command_is_what_ci_runs():
     assert _ci_command(["python", "-m", "pip", *install[1:]]) == [
         ["python", "-m", "pip", *install[1:]]]
     assert pytest_run[1:] == ["-m", "pytest", "-q"]
-    assert _ci_command(["python", "-m", "pytest"]) == [["python", "-m", "pytest", "-q"]]
+    # the whole suite twice: in the README's environment, then in the plain install's
+    assert _ci_command(["python", "-m", "pytest"]) == [["python", "-m", "pytest", "-q"]] * 2
     extra = re.fullmatch(r"\.\[(\w+)\]", install[-1])
     assert extra and extra.group(1) in PYPROJECT["project"]["optional-dependencies"]
+
+
+def test_ci_also_runs_the_suite_in_a_plain_install_without_lifelines():
+    extras = PYPROJECT["project"]["optional-dependencies"]
+    assert _ci_command(["python", "-m", "pip", "install", "-q", ".[test-core]"])
+    assert not any(d.startswith("lifelines") for d in extras["test-core"])
+    assert sorted(extras["test"]) == ["casemix[test-core]", "lifelines>=0.27"]
+    venvs = [line[-1] for line in _ci_command(["python3", "-m", "venv"])]
+    assert len(set(venvs)) == 2, "each suite in its own fresh virtual environment"
 
 
 # --- Quick start: the main job, run --------------------------------------------------------

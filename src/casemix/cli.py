@@ -13,16 +13,16 @@ from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from enum import Enum
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
-import pandas as pd
 import typer
 from rich.console import Console
-from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
-from rich.table import Table
 
 import casemix
-from casemix.errors import CasemixError, CasemixWarning
+from casemix.errors import CasemixError, CasemixWarning, plural
+
+if TYPE_CHECKING:  # pandas, scipy, statsmodels and matplotlib load inside the commands only
+    import pandas as pd
 
 app = typer.Typer(
     name="casemix",
@@ -94,6 +94,8 @@ def _show_warnings(caught) -> None:
 @contextmanager
 def _steps(total: int) -> Iterator[Callable[[str], None]]:
     """A progress bar over named steps, shown only when stderr is a terminal."""
+    from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
+
     progress = Progress(
         TextColumn("{task.description:<28}"),
         BarColumn(),
@@ -190,7 +192,7 @@ def check(
     with _guarded():
         result = read_records(records, spec, cutoff=_date(cutoff, "--cutoff"))
     out.print(
-        f"{records}: {result.n_read} records read, {len(result.frame)} kept, "
+        f"{records}: {plural(result.n_read, 'record')} read, {len(result.frame)} kept, "
         f"{len(result.exclusions)} excluded"
     )
     if len(result.exclusions):
@@ -221,6 +223,8 @@ def _reason_counts(exclusions: pd.DataFrame) -> pd.DataFrame:
 
 
 def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:
+    from rich.table import Table
+
     table = Table(title=title, title_justify="left")
     for name in frame.columns:
         table.add_column(str(name), justify="left" if name == key else "right")
@@ -261,9 +265,9 @@ def fit(
         step("saved")
     fit_ = model.fit
     out.print(
-        f"fitted {outcome} at {horizon} days on {fit_.n} recipients with {fit_.n_events} events "
-        f"({len(fit_.names)} terms, concordance {model.concordance:.3f}); "
-        f"{len(data.exclusions)} records excluded"
+        f"fitted {outcome} at {horizon} days on {plural(fit_.n, 'recipient')} with "
+        f"{plural(fit_.n_events, 'event')} ({plural(len(fit_.names), 'term')}, concordance "
+        f"{model.concordance:.3f}); {plural(len(data.exclusions), 'record')} excluded"
     )
     out.print(f"model written to {out_path}")
 
@@ -334,6 +338,8 @@ def _write_report(folder: Path, out_file: Path | None = None, suppress_below=Non
 def _summary(result, folder: Path, report: bool) -> None:
     programs = result.programs
     level = f"{100 * result.rules.credible_level:g}%"
+    from rich.table import Table
+
     table = Table(title="Programs (HR: shrunken hazard ratio)", title_justify="left", box=None)
     for name, justify in [
         ("program", "left"),
@@ -501,7 +507,8 @@ def demo(
         step("done")
     out.print(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
-        f"{len(cohort.frame)} cohort recipients in {len(result.programs)} programs"
+        f"{plural(len(cohort.frame), 'cohort recipient')} in "
+        f"{plural(len(result.programs), 'program')}"
     )
     _summary(result, out_dir, True)
 

@@ -515,14 +515,29 @@ def _blank_missing(rng: np.random.Generator, cov: dict, program: np.ndarray) -> 
         cov[name] = values
 
 
+def _dates(days: np.ndarray) -> np.ndarray:
+    """Whole days since 1970-01-01 (float, NaN for no date) as datetimes, NaT for NaN.
+
+    No float-to-datetime cast: pandas runs that one under ``np.errstate(over="raise")``, where
+    a floating-point flag left over from earlier work can raise a FloatingPointError. The unit
+    is the one pandas gives dates it parses (ns in pandas 2, us in pandas 3), as before.
+    """
+    days = np.asarray(days, dtype=float)
+    missing = np.isnan(days)
+    out = np.where(missing, 0, days).astype(np.int64).astype("datetime64[D]")
+    out = out.astype(f"datetime64[{pd.DatetimeIndex(['1970-01-01']).unit}]")
+    out[missing] = np.datetime64("NaT")
+    return out
+
+
 def _assemble(
     program: np.ndarray, transplant: np.ndarray, dates: dict, cov: dict
 ) -> pd.DataFrame:
     codes = np.array([p.code for p in _PROGRAMS], dtype=object)
     columns = {
         "program": codes[program],
-        "transplant_date": pd.to_datetime(transplant, unit="D"),
-        **{name: pd.to_datetime(dates[name], unit="D") for name in _DATE_COLUMNS[1:]},
+        "transplant_date": _dates(transplant),
+        **{name: _dates(dates[name]) for name in _DATE_COLUMNS[1:]},
         "recipient_age": cov["recipient_age"].astype(np.int64),
         "recipient_sex": np.where(cov["male"], "male", "female"),
         "bmi": cov["bmi"],

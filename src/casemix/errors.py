@@ -51,6 +51,10 @@ class PriorWarning(CasemixWarning):
     """An empirical-Bayes prior that fell back to a default (no extra-Poisson variation)."""
 
 
-def plural(count: int, word: str) -> str:
-    """Return ``"1 row"`` / ``"3 rows"`` for messages."""
-    return f"{count} {word}" if count == 1 else f"{count} {word}s"
+def plural(count: int, word: str, verb: tuple[str, str] | None = None) -> str:
+    """Return ``"1 row"`` / ``"3 rows"`` for messages.
+
+    With ``verb=("is", "are")`` the verb that agrees follows: ``"1 row is"`` / ``"3 rows are"``.
+    """
+    counted = f"{count} {word}" if count == 1 else f"{count} {word}s"
+    return counted if verb is None else f"{counted} {verb[0] if count == 1 else verb[1]}"

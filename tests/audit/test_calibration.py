@@ -112,6 +112,25 @@ def test_by_size_groups_thirds():
     )
 
 
+@pytest.mark.parametrize("n", [3, 8, 10, 16, 31, 60])
+def test_size_thirds_are_qcut_thirds_with_exact_edges(n):
+    # Reference: pandas.qcut on the ranks 1..n (linear quantiles, right-closed bins), with
+    # its edges 1 + j (n - 1) / 3 moved just above any rank they fall on: there qcut's answer
+    # depends on floating-point rounding (n = 16, edges 6 and 11: pandas 2 puts rank 6 in the
+    # middle third, pandas 3 in the first) and the exact rule keeps the rank in the lower bin.
+    sizes = np.random.default_rng(n).permutation(np.arange(10, 10 + 7 * n, 7))
+    programs = pd.DataFrame({"program": [f"p{i}" for i in range(n)], "recipients": sizes,
+                             "observed": np.ones(n, int), "expected": np.ones(n)})
+    table = calibration_by_size(programs)
+    rank = pd.Series(sizes).rank(method="first").to_numpy()
+    edges = 1 + np.arange(4) * (n - 1) / 3 + 1e-9  # an edge on a rank keeps it below
+    edges[0], edges[3] = 0, n + 1
+    reference = pd.cut(rank, edges, labels=False)
+    assert list(table["units"]) == list(np.bincount(reference, minlength=3))
+    if n == 16:
+        assert list(table["units"]) == [6, 5, 5]
+
+
 def test_errors():
     with pytest.raises(InputError, match="1 recipient had an event with E = 0"):
         calibration_regression([1, 0, 1], [0.0, 0.5, 0.7], [0.1, 0.2, 0.3])

@@ -7,6 +7,9 @@ from types import SimpleNamespace
 import numpy as np
 import pytest
 from audit_helpers import step_expected
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import CoxPHFitter
 
 from casemix.audit import ProgramArrays, leave_one_program_out

@@ -8,13 +8,15 @@ import numpy as np
 import pandas as pd
 import pytest
 from audit_helpers import ROSSI_FULL, ROSSI_SMALL
-from lifelines import CoxPHFitter
-from lifelines.statistics import proportional_hazard_test
+from oracles import lazy
 from statsmodels.duration.hazard_regression import PHReg, PHRegResults
 
 from casemix.audit import ph_test, schoenfeld_residuals, time_transform
 from casemix.errors import InputError
 from casemix.survival import fit_cox
+
+CoxPHFitter = lazy("lifelines", "CoxPHFitter")
+proportional_hazard_test = lazy("lifelines.statistics", "proportional_hazard_test")
 
 
 def _data(rossi, names):

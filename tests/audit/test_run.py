@@ -3,6 +3,7 @@ excess and LV04 fewer events than expected, see casemix.demo)."""
 
 from __future__ import annotations
 
+import importlib.util
 import json
 import warnings
 
@@ -57,7 +58,10 @@ def test_tables_and_findings(demo):
     cross = audit.tables["crosscheck"].set_index(["library", "quantity"])
     assert cross.loc[("statsmodels", "coef"), "max_abs_difference"] < 1e-4
     assert cross.loc[("statsmodels", "loglik"), "max_abs_difference"] < 1e-6
-    assert cross.loc[("lifelines", "expected"), "max_rel_difference"] < 1e-4
+    if importlib.util.find_spec("lifelines") is not None:
+        assert cross.loc[("lifelines", "expected"), "max_rel_difference"] < 1e-4
+    else:  # the plain install: the lifelines cross-check is left out, not filled in
+        assert "lifelines" not in cross.index.get_level_values("library")
     assert any("agrees with statsmodels on coef" in f for f in audit.findings)
     # known truth of the invented network: LV05's true HR is the highest, LV04's the lowest
     truth = demo["truth"].set_index("program")["true_hr"]

@@ -10,9 +10,7 @@ import pandas as pd
 import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
-from lifelines import KaplanMeierFitter
-from lifelines.datasets import load_leukemia, load_lung
-from lifelines.utils import datetimes_to_durations
+from oracles import lifelines
 
 from casemix import Records, build_cohort, read_records
 from casemix.data.spec import spec_from_dict
@@ -182,12 +180,12 @@ def _dated_extract(path: Path, time: np.ndarray, status: np.ndarray, spacing_day
     return path
 
 
-def _km(time: np.ndarray, event: np.ndarray) -> KaplanMeierFitter:
-    return KaplanMeierFitter().fit(time, event)
+def _km(time: np.ndarray, event: np.ndarray):
+    return lifelines().KaplanMeierFitter().fit(time, event)
 
 
 def test_km_of_lung_cohort_matches_the_reference_values(tmp_path: Path) -> None:
-    lung = load_lung()
+    lung = lifelines("lifelines.datasets").load_lung()
     path = _dated_extract(tmp_path / "lung.csv", lung["time"].to_numpy(),
                           lung["status"].to_numpy(), 3)
     records = read_records(path, SPEC, cutoff="2030-01-01")
@@ -205,7 +203,8 @@ def test_km_of_lung_cohort_matches_the_reference_values(tmp_path: Path) -> None:
 
 
 def test_km_of_leukemia_cohort_matches_the_published_values(tmp_path: Path) -> None:
-    arm = load_leukemia().query("Rx == 0")  # the 6-MP arm (21 subjects, weeks)
+    leukemia = lifelines("lifelines.datasets").load_leukemia()
+    arm = leukemia.query("Rx == 0")  # the 6-MP arm (21 subjects, weeks)
     path = _dated_extract(tmp_path / "leuk.csv", arm["t"].to_numpy() * 7,
                           arm["status"].to_numpy(), 10)
     cohort = build_cohort(read_records(path, SPEC, cutoff="2030-01-01"), "death", 365)
@@ -220,7 +219,7 @@ def test_km_of_leukemia_cohort_matches_the_published_values(tmp_path: Path) -> N
 
 
 def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: Path) -> None:
-    lung = load_lung()
+    lung = lifelines("lifelines.datasets").load_lung()
     path = _dated_extract(tmp_path / "lung.csv", lung["time"].to_numpy(),
                           lung["status"].to_numpy(), 3)
     cutoff = pd.Timestamp("2016-06-30")
@@ -232,8 +231,8 @@ def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: 
     # Reference: lifelines' own date-to-duration conversion, censoring at the earlier of
     # last seen and the cut-off (the horizon does not bind: lung follow-up ends by day 1022).
     fill = pd.to_datetime(raw["last_seen_date"]).clip(upper=cutoff)
-    t_ref, e_ref = datetimes_to_durations(raw["transplant_date"], raw["death_date"],
-                                          fill_date=fill)
+    to_durations = lifelines("lifelines.utils").datetimes_to_durations
+    t_ref, e_ref = to_durations(raw["transplant_date"], raw["death_date"], fill_date=fill)
     assert len(cohort.exclusions) == (~inside).sum() > 0
     assert (cohort.frame["time"] < lung["time"][inside.to_numpy()]).any()  # the cut-off bites
     np.testing.assert_array_equal(cohort.frame["time"], t_ref)
@@ -298,8 +297,8 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     fill = c["last_seen_date"].clip(upper=cutoff)
     fill = fill.where(fill <= horizon_end, horizon_end)
     if len(c):
-        t_ref, e_ref = datetimes_to_durations(c["transplant_date"], c["death_date"],
-                                              fill_date=fill)
+        to_durations = lifelines("lifelines.utils").datetimes_to_durations
+        t_ref, e_ref = to_durations(c["transplant_date"], c["death_date"], fill_date=fill)
         np.testing.assert_array_equal(c["time"], t_ref)
         np.testing.assert_array_equal(c["event"], e_ref.astype(int))
     # Monotone in the cut-off: a later cut-off never shortens follow-up or removes an event.

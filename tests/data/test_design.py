@@ -9,7 +9,7 @@ import numpy as np
 import pandas as pd
 import patsy
 import pytest
-from lifelines.datasets import load_rossi
+from oracles import lifelines
 
 from casemix import Design
 from casemix.data.design import natural_spline_basis
@@ -126,7 +126,7 @@ def test_spline_spans_the_same_space_as_patsy_cr(design: Design, ref: pd.DataFra
 
 def test_raw_scale_reproduces_the_rossi_columns() -> None:
     """No centring: the design of lifelines' rossi data is the data itself."""
-    rossi = load_rossi()
+    rossi = lifelines("lifelines.datasets").load_rossi()
     names = ["fin", "age", "race", "wexp", "mar", "paro", "prio"]
     kinds = {n: {"kind": "binary" if rossi[n].isin([0, 1]).all() else "numeric"} for n in names}
     design = Design.fit(rossi, _spec(kinds, strata=None))

@@ -358,6 +358,12 @@ def test_duplicate_ids_are_fatal_and_shown(tmp_path: Path) -> None:
         read_records(_write_csv(tmp_path / "m.csv", rows), SPEC)
 
 
+def test_one_duplicate_id_is_counted_in_the_singular(tmp_path: Path) -> None:
+    rows = [MESSY[0], MESSY[1], MESSY[0]]
+    with pytest.raises(InputError, match=r"1 recipient id occurs more than once in column "):
+        read_records(_write_csv(tmp_path / "m.csv", rows), SPEC)
+
+
 def test_helpers() -> None:
     assert format_rows([0]) == "row 1"
     assert format_rows(range(7)) == "rows 1, 2, 3, 4, 5 and 2 more"

@@ -4,8 +4,10 @@ The data are a seeded simulation with a known truth (invented programs of the fi
 Lorran Valley network): exponential event times with a known baseline hazard, so each
 recipient's expected count is exactly its cumulative hazard. The derived columns are
 computed with reference libraries, not with casemix: Kaplan-Meier curves and numbers at risk
-with lifelines KaplanMeierFitter, Garwood limits with scipy.stats.chi2, gamma posteriors with
-scipy.stats.gamma, the coefficient table with lifelines CoxPHFitter.
+with statsmodels SurvfuncRight (its Greenwood standard error on the log(-log) scale for the
+limits), Garwood limits with scipy.stats.chi2, gamma posteriors with scipy.stats.gamma, the
+coefficient table with statsmodels PHReg (Efron ties) and Harrell's C by brute force over pairs.
+statsmodels, not lifelines, so that the report tests run in the plain install too.
 """
 
 from __future__ import annotations
@@ -18,8 +20,9 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
-from lifelines import CoxPHFitter, KaplanMeierFitter
 from scipy import stats
+from statsmodels.duration.hazard_regression import PHReg
+from statsmodels.duration.survfunc import SurvfuncRight
 
 HORIZON = 365
 BASELINE = 2.5e-4  # events per day at lp = 0
@@ -66,18 +69,27 @@ def _verdict_distances(o: int, e: float) -> tuple[float, float]:
     return float(excess), float(favorable)
 
 
+def _kaplan_meier(time: np.ndarray, event: np.ndarray) -> pd.DataFrame:
+    """Kaplan-Meier from time 0 with 95% log(-log) limits (every time <= HORIZON here)."""
+    sf = SurvfuncRight(time, event)
+    s, se = sf.surv_prob, sf.surv_prob_se
+    with np.errstate(divide="ignore", invalid="ignore"):
+        half = stats.norm.ppf(0.975) * se / np.abs(s * np.log(s))
+        lower, upper = s ** np.exp(half), s ** np.exp(-half)
+    return pd.DataFrame({
+        "time": np.r_[0.0, sf.surv_times], "observed": np.r_[1.0, s],
+        "observed_lower": np.r_[1.0, np.where(s > 0, lower, 0.0)],
+        "observed_upper": np.r_[1.0, np.where(s > 0, upper, 0.0)],
+        "at_risk": np.r_[len(time), sf.n_risk],
+    })
+
+
 def _program_row(code: str, group: pd.DataFrame) -> tuple[dict, pd.DataFrame]:
     a, b = PRIOR
     o, e = int(group["event"].sum()), float(group["expected"].sum())
-    km = KaplanMeierFitter().fit(group["time"], group["event"])
-    ci = km.confidence_interval_survival_function_
-    table = km.event_table
-    curve = pd.DataFrame({
-        "program": code, "time": km.survival_function_.index.to_numpy(float),
-        "observed": km.survival_function_.iloc[:, 0].to_numpy(),
-        "observed_lower": ci.iloc[:, 0].to_numpy(), "observed_upper": ci.iloc[:, 1].to_numpy(),
-        "at_risk": table["at_risk"].to_numpy(),
-    })
+    km = _kaplan_meier(group["time"].to_numpy(float), group["event"].to_numpy())
+    curve = km.assign(program=code)[["program", "time", "observed", "observed_lower",
+                                      "observed_upper", "at_risk"]]
     hazard = BASELINE * np.exp(group["lp"].to_numpy())
     curve["expected"] = [np.exp(-hazard * t).mean() for t in curve["time"]]
     post = stats.gamma(a + o, scale=1 / (b + e))
@@ -89,13 +101,13 @@ def _program_row(code: str, group: pd.DataFrame) -> tuple[dict, pd.DataFrame]:
         "program": code, "recipients": len(group), "observed": o, "expected": e,
         "oe_ratio": o / e, "hr_mean": post.mean(), "hr_lower": post.ppf(0.025),
         "hr_upper": post.ppf(0.975), "p_above": p_above, "p_below": p_below,
-        "verdict": verdict, "observed_survival": float(km.predict(HORIZON)),
+        "verdict": verdict, "observed_survival": float(km["observed"].iloc[-1]),
         "expected_survival": float(np.exp(-hazard * HORIZON).mean()),
         "oe_lower": (stats.chi2.ppf(0.025, 2 * o) / 2 if o else 0.0) / e,
         "oe_upper": stats.chi2.ppf(0.975, 2 * o + 2) / 2 / e,
         "hr_median": post.median(), "weight": e / (b + e),
-        "observed_survival_lower": float(ci.iloc[-1, 0]),
-        "observed_survival_upper": float(ci.iloc[-1, 1]),
+        "observed_survival_lower": float(km["observed_lower"].iloc[-1]),
+        "observed_survival_upper": float(km["observed_upper"].iloc[-1]),
         "events_to_excess": np.nan if verdict == "too_little_data" else excess,
         "events_to_favorable": np.nan if verdict == "too_little_data" else favorable,
         "p_more_exact": stats.poisson.sf(o - 1, e), "p_fewer_exact": stats.poisson.cdf(o, e),
@@ -121,15 +133,24 @@ def _casemix(recipients: pd.DataFrame) -> pd.DataFrame:
 
 
 def _coefficients(recipients: pd.DataFrame) -> tuple[pd.DataFrame, float]:
-    cph = CoxPHFitter().fit(recipients[["time", "event", "age", "diabetes", "deceased"]],
-                            "time", "event")
-    s = cph.summary
+    names = ["age", "diabetes", "deceased"]
+    fit = PHReg(recipients["time"], recipients[names].to_numpy(float),
+                status=recipients["event"], ties="efron").fit()
+    limits = np.exp(fit.conf_int())
     table = pd.DataFrame({
-        "term": s.index.to_list(), "coef": s["coef"].to_numpy(), "se": s["se(coef)"].to_numpy(),
-        "hr": s["exp(coef)"].to_numpy(), "hr_lower": s["exp(coef) lower 95%"].to_numpy(),
-        "hr_upper": s["exp(coef) upper 95%"].to_numpy(), "p_value": s["p"].to_numpy(),
+        "term": names, "coef": fit.params, "se": fit.bse, "hr": np.exp(fit.params),
+        "hr_lower": limits[:, 0], "hr_upper": limits[:, 1], "p_value": fit.pvalues,
     })
-    return table, float(cph.concordance_index_)
+    return table, _harrell_c(recipients, table["coef"].to_numpy())
+
+
+def _harrell_c(recipients: pd.DataFrame, coef: np.ndarray) -> float:
+    """Harrell's C by brute force: pairs where the earlier time is an event; ties in risk 1/2."""
+    time, event = recipients["time"].to_numpy(), recipients["event"].to_numpy().astype(bool)
+    risk = recipients[["age", "diabetes", "deceased"]].to_numpy(float) @ coef
+    usable = event[:, None] & (time[:, None] < time[None, :])
+    higher = (risk[:, None] > risk[None, :]) + 0.5 * (risk[:, None] == risk[None, :])
+    return float((higher * usable).sum() / usable.sum())
 
 
 def write_evaluation_folder(folder: Path, programs: dict | None = None, seed: int = 11,

@@ -36,6 +36,21 @@ def test_program_codes_are_kept_as_written(folder):
           lambda f: f.assign(program=["NA", "007", *f["program"].iloc[2:]]))
     codes = read_evaluation_folder(folder).programs["program"].tolist()
     assert "NA" in codes and "007" in codes
+    curves = read_evaluation_folder(folder).curves  # other tables keep the code too
+    assert curves["time"].dtype == float
+
+
+def test_an_empty_program_code_is_a_clear_error(folder):
+    _edit(folder, "programs.csv", lambda f: f.assign(program=["", *f["program"].iloc[1:]]))
+    with pytest.raises(InputError, match=r"programs\.csv: column 'program' is empty on lines 2"):
+        read_evaluation_folder(folder)
+
+
+def test_missing_numbers_are_still_missing(folder):
+    _edit(folder, "programs.csv",
+          lambda f: f.assign(events_to_favorable=["", "NA", *f["events_to_favorable"][2:]]))
+    values = read_evaluation_folder(folder).programs["events_to_favorable"]
+    assert values.isna().sum() >= 2 and values.dtype == float
 
 
 def test_missing_file(folder):

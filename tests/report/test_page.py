@@ -61,19 +61,38 @@ def test_render_page_refuses_repeated_anchors():
         render_page("t", sections, cautions=[])
 
 
-def test_table_html_escapes_formats_and_keeps_markup():
+def test_table_html_escapes_formats_and_shows_trusted_html_given_beside_the_frame():
     frame = pd.DataFrame({
         "name": [HOSTILE, "plain"],
         "count": [1234, 5],
         "ratio": [0.123456, float("nan")],
-        "chip": [Markup("<b>ok</b>"), Markup("<i>x</i>")],
+        "chip": ["ok", "x"],
     })
-    html = table_html(frame, formats={"ratio": "{:.2f}"}, headers={"count": "Count <n>"})
+    html = table_html(frame, formats={"ratio": "{:.2f}"}, headers={"count": "Count <n>"},
+                      html={"chip": [Markup("<b>{}</b>").format(HOSTILE), Markup("<i>x</i>")]})
     assert HOSTILE not in html and "&lt;script&gt;" in html
     assert "Count &lt;n&gt;" in html
     assert "1,234" in html and "0.12" in html and "–" in html
-    assert "<b>ok</b>" in html
+    assert "<b>&lt;script&gt;" in html and "<i>x</i>" in html
+    assert ">ok<" not in html  # the trusted fragment replaces the frame's value
     assert html.count('class="num"') == 2 + 2 * 2  # two numeric headings, four numeric cells
+
+
+@pytest.mark.parametrize("dtype", [object, "string", "str"])
+def test_table_html_treats_markup_in_a_frame_the_same_whatever_the_dtype(dtype):
+    # pandas 3 stores text in a string dtype that turns Markup into plain str; an object
+    # column keeps it. Either way a frame cell is data: escaped, never trusted.
+    column = pd.Series([Markup("<b>ok</b>"), "plain"], dtype=object).astype(dtype)
+    html = table_html(pd.DataFrame({"chip": column}))
+    assert "<b>ok</b>" not in html and "&lt;b&gt;ok&lt;/b&gt;" in html
+
+
+def test_table_html_refuses_trusted_html_that_does_not_fit_the_frame():
+    frame = pd.DataFrame({"a": [1, 2]})
+    with pytest.raises(ValueError, match="one fragment per row"):
+        table_html(frame, html={"a": [Markup("<b>1</b>")]})
+    with pytest.raises(ValueError, match="needs a frame column"):
+        table_html(frame, html={"b": [Markup("1"), Markup("2")]})
 
 
 def test_facts_html_escapes_values():

@@ -5,8 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pytest
-from lifelines import KaplanMeierFitter
-from lifelines.datasets import load_leukemia
+from oracles import lifelines
 from scipy import stats
 
 from casemix.report.plots import (
@@ -74,7 +73,7 @@ def test_numbers_at_risk_match_the_published_6mp_table():
     # REFERENCE_CHECKS.md 1.1: 6-MP arm at risk at 6, 7, 10, 13, 16, 22, 23 weeks is 21, 17,
     # 15, 12, 11, 7, 6 (REFERENCE LIBRARY: lifelines event_table; a subject censored at an
     # event time is still at risk then).
-    leukemia = load_leukemia()
+    leukemia = lifelines("lifelines.datasets").load_leukemia()
     time = leukemia.loc[leukemia["Rx"] == 0, "t"].to_numpy(float)
     at = [6, 7, 10, 13, 16, 22, 23]
     assert numbers_at_risk(time, at).tolist() == [21, 17, 15, 12, 11, 7, 6]
@@ -83,9 +82,9 @@ def test_numbers_at_risk_match_the_published_6mp_table():
 def test_survival_figure_draws_the_kaplan_meier_curve_given():
     # The curve comes from lifelines KaplanMeierFitter on the 6-MP arm; REFERENCE_CHECKS.md
     # 1.1 (Klein & Moeschberger Table 4.1A, from memory; verified) gives S(23) = 0.448179.
-    leukemia = load_leukemia()
+    leukemia = lifelines("lifelines.datasets").load_leukemia()
     arm = leukemia[leukemia["Rx"] == 0]
-    km = KaplanMeierFitter().fit(arm["t"], arm["status"])
+    km = lifelines().KaplanMeierFitter().fit(arm["t"], arm["status"])
     ci = km.confidence_interval_survival_function_
     curve = pd.DataFrame({"time": km.survival_function_.index.to_numpy(float),
                           "observed": km.survival_function_.iloc[:, 0].to_numpy(),

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import shutil
+
 import pandas as pd
 
 from casemix.report import write_public_tables
@@ -33,3 +35,13 @@ def test_public_exclusion_counts_carry_no_record_values(evaluation_folder, tmp_p
     out = write_public_tables(evaluation_folder, tmp_path / "public", 2)
     text = (out / "exclusions_by_reason.csv").read_text()
     assert "2021-01-02" not in text and "2025-08-31" not in text
+
+
+def test_public_out_of_range_keeps_a_program_coded_na(evaluation_folder, tmp_path):
+    folder = shutil.copytree(evaluation_folder, tmp_path / "copy")
+    pd.DataFrame({"program": ["NA", "LV01"], "covariate": ["age", "age"],
+                  "recipients": [3, 40]}).to_csv(folder / "out_of_range.csv", index=False)
+    out = write_public_tables(folder, tmp_path / "public", 11)
+    table = pd.read_csv(out / "out_of_range.csv", dtype=str, keep_default_na=False)
+    assert table["program"].tolist() == ["NA", "LV01"]
+    assert table["recipients"].tolist() == ["<11", "40"]

@@ -343,7 +343,7 @@ def test_eb_skips_zero_expected_programs():
 
 
 def test_eb_too_few_programs_falls_back():
-    with pytest.warns(PriorWarning, match=r"Only 2 program\(s\) have expected events above 0"):
+    with pytest.warns(PriorWarning, match=r"Only 2 programs have expected events above 0"):
         prior = empirical_bayes_prior([3, 9, 4], [2.0, 4.0, 0.0])
     assert prior.method == "empirical_bayes_fallback"
     assert not prior.at_boundary

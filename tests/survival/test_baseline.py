@@ -13,6 +13,9 @@ import warnings
 import numpy as np
 import pandas as pd
 import pytest
+from oracles import LIFELINES_MISSING
+
+pytest.importorskip("lifelines", reason=LIFELINES_MISSING)
 from lifelines import CoxPHFitter
 from lifelines.datasets import load_rossi
 from statsmodels.duration.hazard_regression import PHReg

@@ -15,20 +15,20 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import pytest
-from lifelines import CoxPHFitter
-from lifelines.datasets import (
-    load_kidney_transplant,
-    load_larynx,
-    load_leukemia,
-    load_lung,
-    load_rossi,
-)
+from oracles import lazy
 from scipy import stats
 from statsmodels.duration.hazard_regression import PHReg
 
 import casemix.survival as survival
 from casemix.errors import CasemixError, ConvergenceError, ConvergenceWarning, InputError
 from casemix.survival import fit_cox
+
+CoxPHFitter = lazy("lifelines", "CoxPHFitter")
+load_kidney_transplant = lazy("lifelines.datasets", "load_kidney_transplant")
+load_larynx = lazy("lifelines.datasets", "load_larynx")
+load_leukemia = lazy("lifelines.datasets", "load_leukemia")
+load_lung = lazy("lifelines.datasets", "load_lung")
+load_rossi = lazy("lifelines.datasets", "load_rossi")
 
 ROSSI_COVARIATES = ("fin", "age", "race", "wexp", "mar", "paro", "prio")
 

@@ -10,11 +10,15 @@ import warnings
 
 import numpy as np
 import pytest
-from lifelines import KaplanMeierFitter
-from lifelines.datasets import load_leukemia, load_lung, load_rossi
+from oracles import lazy
 
 from casemix.errors import InputError
 from casemix.survival import KaplanMeier, kaplan_meier
+
+KaplanMeierFitter = lazy("lifelines", "KaplanMeierFitter")
+load_leukemia = lazy("lifelines.datasets", "load_leukemia")
+load_lung = lazy("lifelines.datasets", "load_lung")
+load_rossi = lazy("lifelines.datasets", "load_rossi")
 
 EVENT_WEEKS = np.array([6.0, 7.0, 10.0, 13.0, 16.0, 22.0, 23.0])
 

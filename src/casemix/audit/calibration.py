@@ -105,6 +105,20 @@ def calibration_by_risk(event, expected, risk, *, groups: int = 10) -> pd.DataFr
     return table
 
 
+def _size_thirds(recipients: pd.Series) -> np.ndarray:
+    """Group 0, 1 or 2 per program: ``pandas.qcut``'s thirds of the size ranks, exactly.
+
+    Ranks first (ties by order) so that equal sizes cannot make two thirds coincide. The edges
+    are qcut's (linearly interpolated quantiles of the ranks 1..n, bins closed on the right),
+    compared in integer arithmetic: in floating point an edge that falls on a rank (n = 16:
+    ranks 6 and 11) lands on either side of it, and pandas 2 and 3 disagree there.
+    """
+    k, n = len(SIZE_GROUPS), len(recipients)
+    below = recipients.rank(method="first").to_numpy().astype(np.int64) - 1  # 0 .. n - 1
+    # rank r is past edge j (1 + j (n - 1) / k) when (r - 1) k > j (n - 1)
+    return ((below[:, None] * k) > (np.arange(1, k)[None, :] * (n - 1))).sum(axis=1)
+
+
 def calibration_by_size(programs: pd.DataFrame) -> pd.DataFrame:
     """O against E for small, medium and large programs (thirds of the recipient counts).
 
@@ -124,10 +138,8 @@ def calibration_by_size(programs: pd.DataFrame) -> pd.DataFrame:
     if missing:
         raise InputError(f"the programs table lacks column(s) {sorted(missing)}")
     if len(programs) < len(SIZE_GROUPS):
-        raise InputError(f"size groups need at least {len(SIZE_GROUPS)} programs")
-    # rank first so that equal sizes cannot make two thirds coincide
-    rank = programs["recipients"].rank(method="first").to_numpy()
-    codes = pd.qcut(rank, len(SIZE_GROUPS), labels=False)
+        raise InputError(f"size groups need at least {plural(len(SIZE_GROUPS), 'program')}")
+    codes = _size_thirds(programs["recipients"])
     table = calibration_by_group(programs["observed"], programs["expected"], codes)
     sizes = programs.groupby(codes)["recipients"].agg(["min", "max"])
     table.insert(1, "size", np.asarray(SIZE_GROUPS, dtype=object)[table["group"].to_numpy()])

@@ -53,8 +53,8 @@ def _check_fit(fit: Any, p: int) -> tuple[np.ndarray, np.ndarray, bool]:
     cov = np.asarray(fit.cov, dtype=float)
     if coef.shape != (p,) or cov.shape != (p, p):
         raise InputError(
-            f"the fit has {coef.size} coefficients but X has {p} columns; pass the design "
-            "matrix the model was fitted on"
+            f"the fit has {plural(coef.size, 'coefficient')} but X has {plural(p, 'column')}; pass "
+            "the design matrix the model was fitted on"
         )
     if fit.ties not in ("efron", "breslow"):
         raise InputError(f"unknown ties method {fit.ties!r}; use 'efron' or 'breslow'")

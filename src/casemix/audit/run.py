@@ -33,7 +33,7 @@ from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, read_records
-from casemix.errors import InputError
+from casemix.errors import InputError, plural
 from casemix.evaluation.evaluate import evaluate
 from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
 from casemix.report.audit_page import audit_html
@@ -112,7 +112,7 @@ def _transforms(data) -> tuple[list[str], list[str]]:
     at_zero = int(((data.time == 0) & (data.event == 1)).sum())
     if not at_zero:
         return list(TRANSFORMS), []
-    note = f"the log time transform was left out: {at_zero} events happened at time 0"
+    note = f"the log time transform was left out: {plural(at_zero, 'event')} happened at time 0"
     return [t for t in TRANSFORMS if t != "log"], [note]
 
 

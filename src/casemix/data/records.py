@@ -286,7 +286,8 @@ def _check_duplicates(frame: pd.DataFrame, spec: Spec, path: Path) -> None:
     groups = frame.index[dup].groupby(ids[dup].to_numpy())
     shown = [f"'{k}' in {format_rows(groups[k])}" for k in sorted(groups)[:_SHOW]]
     raise InputError(
-        f"records file '{path}': {plural(len(groups), 'recipient id')} occur more than once "
+        f"records file '{path}': {plural(len(groups), 'recipient id', ('occurs', 'occur'))} "
+        "more than once "
         f"in column '{spec.columns.recipient}' ({'; '.join(shown)}). Each transplant needs "
         "its own id (a recipient transplanted twice is two recipients); fix the ids."
     )

@@ -9,6 +9,7 @@ folder"). Each CSV must have its contract columns; extra columns are kept. Text 
 from __future__ import annotations
 
 import json
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -18,7 +19,11 @@ import pandas as pd
 from casemix.errors import InputError, plural
 from casemix.stats.verdict import VERDICTS
 
-__all__ = ["EvaluationFolder", "read_evaluation_folder"]
+__all__ = ["EvaluationFolder", "read_csv_as_written", "read_evaluation_folder"]
+
+# The strings read_csv takes as missing by default (pandas documentation of `na_values`).
+_DEFAULT_NA = ("", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND",
+               "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null")
 
 # file -> (text columns, numeric columns) of the contract
 _CONTRACT: dict[str, tuple[tuple[str, ...], tuple[str, ...]]] = {
@@ -73,6 +78,27 @@ def _rows(mask: np.ndarray) -> str:
     return shown + (f" and {len(lines) - 8} more" if len(lines) > 8 else "")
 
 
+def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.DataFrame:
+    """Read a CSV file, keeping ``text_columns`` exactly as written.
+
+    A program coded ``NA`` or an empty code stays that text; the other columns are read as
+    ``read_csv`` reads them by default. ``converters={column: str}`` is not enough: from
+    pandas 3 on the missing-value check also runs on converted values, so ``NA`` and ``""``
+    would become NaN there and a program would vanish from the report.
+
+    Parameters
+    ----------
+    path : str or Path
+        The CSV file.
+    text_columns : sequence of str
+        Columns read as text with no value taken as missing (absent ones are ignored).
+    """
+    header = pd.read_csv(path, nrows=0).columns
+    text = [c for c in header if c in text_columns]
+    return pd.read_csv(path, dtype=dict.fromkeys(text, str), keep_default_na=False,
+                       na_values={c: list(_DEFAULT_NA) for c in header if c not in text})
+
+
 def _read_csv(folder: Path, name: str) -> pd.DataFrame:
     path = folder / name
     if not path.is_file():
@@ -82,7 +108,7 @@ def _read_csv(folder: Path, name: str) -> pd.DataFrame:
         )
     text_cols, num_cols = _CONTRACT[name]
     try:
-        frame = pd.read_csv(path, converters={c: str for c in text_cols})
+        frame = read_csv_as_written(path, text_cols)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as err:
         raise InputError(f"{path}: cannot be read as CSV ({err}); write it again.") from err
     missing = [c for c in (*text_cols, *num_cols) if c not in frame.columns]

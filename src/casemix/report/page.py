@@ -196,13 +196,17 @@ def _default_format(value: object) -> str:
 
 
 def _cell(value: object, formatter: Formatter | str | None) -> Markup:
-    if isinstance(value, Markup):
-        return value
+    """One value as escaped text: a DataFrame cell is always data, never trusted HTML.
+
+    A :class:`markupsafe.Markup` stored in a DataFrame keeps its type in an ``object`` column
+    but becomes a plain ``str`` in pandas 3's default string dtype, so trusting it would make
+    the page depend on how pandas stores a column; it is escaped like any other text.
+    """
     if value is None or (not isinstance(value, str) and pd.isna(value)):
         return Markup(MISSING)
     if isinstance(formatter, str):
-        return escape(formatter.format(value))
-    return escape((formatter or _default_format)(value))
+        return escape(str(formatter.format(value)))
+    return escape(str((formatter or _default_format)(value)))
 
 
 def _is_numeric(series: pd.Series) -> bool:
@@ -218,6 +222,7 @@ def table_html(
     caption: str | None = None,
     index: bool = False,
     wide: bool = False,
+    html: Mapping[str, Sequence[str]] | None = None,
 ) -> str:
     """Return a DataFrame as an HTML ``<table>``, every cell escaped.
 
@@ -239,16 +244,26 @@ def table_html(
         Show the index as the first column.
     wide : bool, default False
         Let the table take the full width (headings wrap instead of the table scrolling).
+    html : mapping of column -> sequence of str, optional
+        Trusted HTML fragments (built from escaped parts) shown instead of the values of these
+        columns, one per row in row order. They are passed beside the frame, never stored in
+        it, so that no pandas dtype can turn them into text; the frame's own values of such a
+        column still decide its alignment.
 
     Returns
     -------
     str
-        ``<table>...</table>``. Missing values show as an en dash; cells that are
-        :class:`markupsafe.Markup` are trusted and kept as they are.
+        ``<table>...</table>``. Missing values show as an en dash; every frame value is text
+        and is escaped, whatever its type or the column's dtype.
     """
     frame = df.reset_index() if index else df
     formats = dict(formats or {})
     headers = dict(headers or {})
+    trusted = {c: [Markup(h) for h in cells] for c, cells in (html or {}).items()}
+    for c, cells in trusted.items():
+        if c not in frame.columns or len(cells) != len(frame):
+            raise ValueError(f"html column {c!r}: needs a frame column of that name and one "
+                             f"fragment per row ({len(frame)}), got {len(cells)}")
     right = {c for c in frame.columns if _is_numeric(frame[c]) or c in numeric}
     head = Markup("").join(
         Markup('<th scope="col"{}>{}</th>').format(
@@ -260,11 +275,12 @@ def table_html(
     rows = Markup("").join(
         Markup("<tr>{}</tr>").format(
             Markup("").join(
-                Markup("<td{}>{}</td>").format(cls, _cell(value, fmt))
-                for value, (_, fmt, cls) in zip(values, columns, strict=True)
+                Markup("<td{}>{}</td>").format(
+                    cls, trusted[c][i] if c in trusted else _cell(value, fmt))
+                for value, (c, fmt, cls) in zip(values, columns, strict=True)
             )
         )
-        for values in frame.itertuples(index=False, name=None)
+        for i, values in enumerate(frame.itertuples(index=False, name=None))
     )
     cap = Markup("<caption>{}</caption>").format(caption) if caption else ""
     return str(
@@ -283,7 +299,8 @@ def facts_html(items: Sequence[tuple[str, object]]) -> str:
         Labels and values; ``None`` and NaN show as an en dash, Markup values are kept.
     """
     body = Markup("").join(
-        Markup("<dt>{}</dt><dd>{}</dd>").format(label, _cell(value, None))
+        Markup("<dt>{}</dt><dd>{}</dd>").format(
+            label, value if isinstance(value, Markup) else _cell(value, None))
         for label, value in items
     )
     return str(Markup('<dl class="facts">{}</dl>').format(body))

@@ -12,7 +12,7 @@ from pathlib import Path
 import pandas as pd
 
 from casemix._io import write_csv
-from casemix.report.folder import read_evaluation_folder
+from casemix.report.folder import read_csv_as_written, read_evaluation_folder
 from casemix.report.suppress import check_threshold, suppress_counts
 
 __all__ = ["PUBLIC_COUNTS", "exclusions_by_reason", "write_public_tables"]
@@ -84,7 +84,7 @@ def write_public_tables(folder: str | Path, out: str | Path, n: int) -> Path:
     }
     extra = Path(folder) / "out_of_range.csv"
     if extra.is_file():  # written by newer evaluations; older folders do not have it
-        tables["out_of_range.csv"] = pd.read_csv(extra, converters={"program": str})
+        tables["out_of_range.csv"] = read_csv_as_written(extra, ["program"])
     out = Path(out)
     for name, table in tables.items():
         write_csv(out / name, suppress_counts(table, PUBLIC_COUNTS[name], n))

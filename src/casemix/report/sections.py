@@ -221,11 +221,10 @@ def _survival_cell(row: pd.Series, column: str) -> str:
 
 
 def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFrame:
-    programs, palette = data.programs, verdict_colours()
+    programs = data.programs
     return pd.DataFrame({
-        "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
-                    for i, code in enumerate(programs["program"])],
-        "verdict": [verdict_html(v, palette) for v in programs["verdict"]],
+        "program": programs["program"].to_numpy(object),
+        "verdict": programs["verdict"].to_numpy(object),
         "reach": [reach_text(r) for _, r in programs.iterrows()],
         "recipients": counts_text(programs["recipients"], options),
         "observed": counts_text(programs["observed"], options),
@@ -238,6 +237,17 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
                               for _, r in programs.iterrows()],
         "expected_survival": [_num(s, 3) for s in programs["expected_survival"]],
     })
+
+
+def _glance_html(data: EvaluationFolder) -> dict[str, list[Markup]]:
+    """The program links and verdict chips of the glance table, kept out of the frame."""
+    palette = verdict_colours()
+    codes = data.programs["program"]
+    return {
+        "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, code), code)
+                    for i, code in enumerate(codes)],
+        "verdict": [verdict_html(v, palette) for v in data.programs["verdict"]],
+    }
 
 
 def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
@@ -257,7 +267,7 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
     }
     table = table_html(_glance_frame(data, options), headers=headers,
                        numeric=[c for c in headers if c not in ("program", "verdict", "reach")],
-                       wide=True)
+                       wide=True, html=_glance_html(data))
     centre = data.run["prior"].get("centre", "the prior's mean")
     intro = Markup(
         "<p>{} The hazard ratio is the observed-to-expected ratio after shrinkage towards "
@@ -419,9 +429,10 @@ def _program_figures(data: EvaluationFolder, code: str, options: ReportOptions) 
 def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
                    options: ReportOptions, palette: dict[str, str]) -> Markup:
     code = row["program"]
-    facts = Markup("<p>{} · {} recipients · observed {} · expected {:.1f} · O/E {} · hazard "
+    facts = Markup("<p>{} · {} {} · observed {} · expected {:.1f} · O/E {} · hazard "
                    "ratio {}</p>").format(
         verdict_html(row["verdict"], palette), _count(row["recipients"], options),
+        "recipient" if row["recipients"] == 1 else "recipients",
         _count(row["observed"], options), row["expected"],
         _interval(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
         _interval(row["hr_mean"], row["hr_lower"], row["hr_upper"]))

@@ -78,10 +78,12 @@ def _suppress_column(values: pd.Series, column: str, n: int) -> pd.Series:
     numeric = pd.to_numeric(values, errors="coerce")
     bad = numeric.isna() & values.notna() | (numeric.notna() & (numeric % 1 != 0))
     if bad.any():
-        rows = ", ".join(str(i) for i in np.flatnonzero(bad.to_numpy())[:5])
+        where = np.flatnonzero(bad.to_numpy())
+        rows = ", ".join(str(i) for i in where[:5])
         raise InputError(
-            f"cannot suppress counts in column {column!r}: rows {rows} (0-based) are not "
-            "whole numbers; only count columns can be suppressed."
+            f"cannot suppress counts in column {column!r}: values that are not whole numbers "
+            f"in {'row' if where.size == 1 else 'rows'} {rows} (0-based); only count columns "
+            "can be suppressed."
         )
     text = [suppress_value(c, n) for c in numeric]
     return pd.Series(text, index=values.index, dtype=object, name=values.name)

@@ -31,7 +31,7 @@ import numpy as np
 import pandas as pd
 from scipy import optimize, special, stats
 
-from casemix.errors import InputError, PriorWarning
+from casemix.errors import InputError, PriorWarning, plural
 from casemix.stats.poisson import as_observed_expected, check_level
 
 __all__ = [
@@ -313,10 +313,10 @@ def _fallback(
 def _skipped_text(count: int) -> str:
     if count == 0:
         return ""
-    programs = "program" if count == 1 else "programs"
+    was, they = ("was", "it carries") if count == 1 else ("were", "they carry")
     return (
-        f" {count} {programs} with zero expected events were left out of the estimate "
-        "because they carry no information about the spread."
+        f" {plural(count, 'program')} with zero expected events {was} left out of the estimate "
+        f"because {they} no information about the spread."
     )
 
 
@@ -380,19 +380,20 @@ def empirical_bayes_prior(
     skipped = _skipped_text(int(used.size - used.sum()))
     if o.size < MIN_PROGRAMS:
         reason = (
-            f"Only {o.size} program(s) have expected events above 0; at least {MIN_PROGRAMS} "
-            "are needed to estimate the spread of hazard ratios."
+            f"Only {plural(o.size, 'program', ('has', 'have'))} expected events above 0; at least "
+            f"{MIN_PROGRAMS} are needed to estimate the spread of hazard ratios."
         )
         return _fallback(o, e, fallback, free_mean, reason=reason, skipped=skipped)
     if o.sum() == 0:
-        reason = f"None of the {o.size} programs has an observed event, so no spread can be seen."
+        reason = (f"None of the {plural(o.size, 'program')} has an observed event, so no "
+                  "spread can be seen.")
         return _fallback(o, e, fallback, free_mean, reason=reason, skipped=skipped)
     optimum = _maximise_shape(o, e, free_mean, max_shape)
     if optimum is None:
         reason = (
-            f"The {o.size} programs vary no more than Poisson chance allows: the marginal "
-            "likelihood keeps rising as the prior shape grows without limit, so there is no "
-            "finite estimate."
+            f"The {plural(o.size, 'program')} vary no more than Poisson chance allows: the "
+            "marginal likelihood keeps rising as the prior shape grows without limit, so there "
+            "is no finite estimate."
         )
         return _fallback(
             o, e, fallback, free_mean, reason=reason, skipped=skipped, at_boundary=True
@@ -401,7 +402,7 @@ def empirical_bayes_prior(
     mean = _best_mean(o, e, shape) if free_mean else 1.0
     how = f"mean {mean:.3g} estimated" if free_mean else "mean fixed at 1 (the reference)"
     note = (
-        f"Empirical Bayes from {o.size} programs: prior Gamma(shape {shape:.4g}, rate "
+        f"Empirical Bayes from {plural(o.size, 'program')}: prior Gamma(shape {shape:.4g}, rate "
         f"{shape / mean:.4g}), {how}; the programs' hazard ratios spread with a prior "
         f"standard deviation of {mean / math.sqrt(shape):.3g}.{skipped}"
     )

@@ -24,7 +24,8 @@ def as_time_event(time, event) -> tuple[np.ndarray, np.ndarray]:
     bad = ~np.isfinite(time)
     if bad.any():
         raise InputError(
-            f"time has {plural(int(bad.sum()), 'row')} that is NaN or infinite "
+            f"time has {plural(int(bad.sum()), 'row')} that {'is' if bad.sum() == 1 else 'are'} "
+            "NaN or infinite "
             f"(first at row {int(np.flatnonzero(bad)[0])}); give every recipient a finite "
             "follow-up time"
         )
@@ -37,14 +38,15 @@ def as_time_event(time, event) -> tuple[np.ndarray, np.ndarray]:
     event_raw = np.asarray(event)
     if event_raw.shape != time.shape:
         raise InputError(
-            f"event has {event_raw.shape[0] if event_raw.ndim else 0} rows but time has "
+            f"event has {plural(event_raw.shape[0] if event_raw.ndim else 0, 'row')} but time has "
             f"{time.shape[0]}; give one event indicator per recipient"
         )
     with np.errstate(invalid="ignore"):
         ok = np.isin(event_raw, (0, 1))
     if not ok.all():
         raise InputError(
-            f"event must be 0 or 1; {plural(int((~ok).sum()), 'row')} hold other values "
+            f"event must be 0 or 1; {plural(int((~ok).sum()), 'row', ('holds', 'hold'))} other "
+            "values "
             f"(first at row {int(np.flatnonzero(~ok)[0])}: {event_raw[~ok][0]!r})"
         )
     return time, event_raw.astype(np.int8)
@@ -60,7 +62,7 @@ def as_weights(weights, n: int) -> np.ndarray:
     bad = ~np.isfinite(weights) | (weights <= 0)
     if bad.any():
         raise InputError(
-            f"weights must be finite and > 0; {plural(int(bad.sum()), 'row')} are not "
+            f"weights must be finite and > 0; {plural(int(bad.sum()), 'row', ('is', 'are'))} not "
             f"(first at row {int(np.flatnonzero(bad)[0])})"
         )
     return weights
@@ -72,7 +74,7 @@ def as_matrix(X, n: int, names: tuple[str, ...] | None) -> tuple[np.ndarray, tup
     if X.ndim == 1:
         X = X[:, None]
     if X.ndim != 2 or X.shape[0] != n:
-        raise InputError(f"X must have shape (n, p) with n = {n} rows; got {X.shape}")
+        raise InputError(f"X must have shape (n, p) with n = {plural(n, 'row')}; got {X.shape}")
     if X.shape[1] == 0:
         raise InputError("X has no columns; give at least one covariate")
     if names is None:
@@ -84,7 +86,8 @@ def as_matrix(X, n: int, names: tuple[str, ...] | None) -> tuple[np.ndarray, tup
         bad = ~np.isfinite(X[:, j])
         kind = "NaN" if np.isnan(X[bad, j]).any() else "infinite"
         raise InputError(
-            f"column '{names[j]}' has {plural(int(bad.sum()), 'row')} that is {kind} "
+            f"column '{names[j]}' has {plural(int(bad.sum()), 'row')} that "
+            f"{'is' if bad.sum() == 1 else 'are'} {kind} "
             f"(first at row {int(np.flatnonzero(bad)[0])}); impute or exclude them before fitting"
         )
     return X, names

@@ -95,7 +95,8 @@ def _check_risk(risk, n: int) -> np.ndarray:
     bad = ~np.isfinite(risk)
     if bad.any():
         raise InputError(
-            f"risk has {plural(int(bad.sum()), 'row')} that is NaN or infinite (first at row "
+            f"risk has {plural(int(bad.sum()), 'row')} that {'is' if bad.sum() == 1 else 'are'} "
+            "NaN or infinite (first at row "
             f"{int(np.flatnonzero(bad)[0])}); score every recipient before computing C"
         )
     return risk

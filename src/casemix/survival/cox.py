@@ -80,9 +80,10 @@ class BaselineHazard:
         beyond = t > self.last_time
         if beyond.any() and not allow_beyond:
             raise InputError(
-                f"{plural(int(beyond.sum()), 'time')} lie beyond the last follow-up time of the "
-                f"fitting data ({self.last_time:g}), up to {t.max():g}; the baseline hazard is "
-                "unknown there: shorten the horizon or refit on data with longer follow-up"
+                f"{plural(int(beyond.sum()), 'time', ('lies', 'lie'))} beyond the last follow-up "
+                f"time of the fitting data ({self.last_time:g}), up to {t.max():g}; the baseline "
+                "hazard is unknown there: shorten the horizon or refit on data with longer "
+                "follow-up"
             )
         idx = np.searchsorted(self.times, t, side="right") - 1
         values = self.cumhaz[np.clip(idx, 0, None)] if self.times.size else np.zeros(t.size)
@@ -179,7 +180,7 @@ class CoxFit:
         risk = self.relative_risk(X)
         time = np.asarray(time, dtype=float)
         if time.shape != risk.shape:
-            raise InputError(f"time has shape {time.shape} but X has {risk.size} rows")
+            raise InputError(f"time has shape {time.shape} but X has {plural(risk.size, 'row')}")
         return self.cumulative_hazard(time, strata, allow_beyond=allow_beyond) * risk
 
     def survival(self, time, X, strata=None, *, allow_beyond: bool = False) -> np.ndarray:
@@ -214,7 +215,8 @@ def _as_design(X, names: tuple[str, ...]) -> np.ndarray:
     if X.ndim == 1:
         X = X[:, None] if len(names) == 1 else X[None, :]
     if X.ndim != 2 or X.shape[1] != len(names):
-        raise InputError(f"X must have {len(names)} columns ({', '.join(names)}); got {X.shape}")
+        raise InputError(f"X must have {plural(len(names), 'column')} ({', '.join(names)}); "
+                         f"got {X.shape}")
     return as_matrix(X, X.shape[0], names)[0]
 
 
