@@ -187,9 +187,16 @@ def cusum_maxima(
     valid[:, 0:-1:2] = new_day
     valid[:, 1:-1:2] = real
     valid[:, -1] = True
-    clipped = np.clip(points, -1, days)
+    clipped = np.minimum(np.maximum(points, -1), days)
     expected = np.concatenate([[0.0], expected_full])[clipped + 1] - correction(clipped)
-    observed = (event_day[:, None, :] <= points[:, :, None]).sum(axis=2)
+    # events on or before each point: the rows are sorted, so one searchsorted over all rows
+    stride = days + 3
+    flat = (event_day + stride * np.arange(r)[:, None]).ravel()
+    upto = np.searchsorted(flat, flat, side="right").reshape(r, k) - k * np.arange(r)[:, None]
+    observed = np.empty(points.shape)
+    observed[:, 0:-1:2] = np.arange(k)  # before the first event of a day: the earlier ones
+    observed[:, 1:-1:2] = upto
+    observed[:, -1] = real.sum(axis=1)
     out = np.empty((len(rhos), r))
     for c, rho in enumerate(rhos):
         llr = log_likelihood_ratio(observed, expected, rho)

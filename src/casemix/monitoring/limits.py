@@ -26,8 +26,8 @@ from casemix.monitoring.cusum import cusum_maxima, expected_by_day
 
 __all__ = ["ControlLimit", "control_limit", "program_seed", "simulate_maxima"]
 
-# elements of the (replicates, points, events) work arrays held at once, and of the
-# (replicates, recipients) uniform draws
+# elements of the (histories, points, events) work arrays held at once, and of the
+# (histories, recipients) uniform draws
 _CHUNK_ELEMENTS = 4_000_000
 _DRAW_ELEMENTS = 2_000_000
 
@@ -91,55 +91,71 @@ def simulate_maxima(
             mine = stratum[who] == s
             when[mine] = np.searchsorted(hazard[s], target[mine], side="left")
         when = np.minimum(when, censor[who])
-        histories = _Events(rows, who, when, entry, censor, risk, stratum, hazard, block, days)
-        step = max(1, _CHUNK_ELEMENTS // max(1, (2 * histories.width + 1) * histories.width))
-        for first in range(0, block, step):
-            part = slice(first, min(first + step, block))
-            out[:, done + part.start : done + part.stop] = cusum_maxima(
-                histories.day[part], histories.correction(part), full, rhos
-            )
+        events = _Events(rows, who, when, entry, censor, risk, stratum, block)
+        for group in events.groups():
+            day, correction = events.padded(group, hazard, days)
+            out[:, done + group] = cusum_maxima(day, correction, full, rhos)
         done += block
     return out
 
 
 class _Events:
-    """Simulated events of a block of histories as padded (history, slot) arrays (internal)."""
+    """Simulated events of a block of histories, sorted by history and day (internal).
 
-    def __init__(self, rows, who, when, entry, censor, risk, stratum, hazard, block, days):
+    Histories are handled in groups of similar event counts, each padded only to its own
+    largest count: the work per history grows with the square of its events.
+    """
+
+    def __init__(self, rows, who, when, entry, censor, risk, stratum, block):
         day = entry[who] + when
         order = np.lexsort((day, rows))
-        rows, who, when, day = rows[order], who[order], when[order], day[order]
-        counts = np.bincount(rows, minlength=block)
-        self.width = max(int(counts.max(initial=0)), 1)
-        slot = np.arange(rows.size) - np.repeat(np.cumsum(counts) - counts, counts)
-        shape = (block, self.width)
-        self.day = np.full(shape, days + 2, dtype=np.intp)
-        self.day[rows, slot] = day
-        self._entry = np.zeros(shape, np.intp)
-        self._start = np.zeros(shape, np.intp)
-        self._end = np.zeros(shape, np.intp)
-        self._risk = np.zeros(shape)
-        self._stratum = np.zeros(shape, np.intp)
-        self._entry[rows, slot] = entry[who]
-        self._start[rows, slot] = when
-        self._end[rows, slot] = censor[who]
-        self._risk[rows, slot] = risk[who]
-        self._stratum[rows, slot] = stratum[who]
-        self._hazard = hazard
+        self.counts = np.bincount(rows, minlength=block)
+        self.first = np.cumsum(self.counts) - self.counts
+        who = who[order]
+        self.day, self.start = day[order], when[order]
+        self.entry, self.end = entry[who], censor[who]
+        self.risk, self.stratum = risk[who], stratum[who]
 
-    def correction(self, part: slice):
-        """The follow-up each history's events cut short, as expected events by day."""
-        entry, start, end = self._entry[part], self._start[part], self._end[part]
-        risk, stratum, hazard = self._risk[part], self._stratum[part], self._hazard
+    def groups(self):
+        """Histories in groups (arrays of history numbers) of similar event counts."""
+        rank = np.argsort(self.counts, kind="stable")
+        done = 0
+        while done < rank.size:
+            widest = max(int(self.counts[rank[min(done + 255, rank.size - 1)]]), 1)
+            size = int(np.clip(_CHUNK_ELEMENTS // ((2 * widest + 1) * widest), 1, 256))
+            yield rank[done : done + size]
+            done += size
 
-        def lost(points: np.ndarray) -> np.ndarray:
-            since = points[:, :, None] - entry[:, None, :]
-            u = np.clip(since, start[:, None, :], end[:, None, :])
-            s = stratum[:, None, :]
-            cut = hazard[s, u] - hazard[s, start[:, None, :]]
-            return (risk[:, None, :] * cut).sum(axis=2)
+    def padded(self, group: np.ndarray, hazard: np.ndarray, days: int):
+        """(history, slot) arrays of a group: event days padded with ``days + 2``, and the
+        correction (see :func:`casemix.monitoring.cusum.cusum_maxima`) of its histories."""
+        counts = self.counts[group]
+        width = max(int(counts.max(initial=0)), 1)
+        slot = np.arange(width)
+        real = slot[None, :] < counts[:, None]
+        index = np.where(real, self.first[group][:, None] + slot[None, :], 0)
+        if self.day.size == 0:
+            return np.full(real.shape, days + 2, dtype=np.intp), lambda points: 0.0
 
-        return lost
+        def take(values, pad):
+            return np.where(real, values[index], pad)
+
+        day = take(self.day, days + 2)
+        entry, start, end = take(self.entry, 0), take(self.start, 0), take(self.end, 0)
+        risk = take(self.risk, 0.0)
+        row = take(self.stratum, 0) * hazard.shape[1]  # offsets into the flattened table
+        flat = hazard.ravel()
+        base = (risk * flat[row + start]).sum(axis=1)[:, None]  # sum_k risk_k H(X_k)
+        entry, start, end, row = (a.astype(np.int32)[:, None, :] for a in (entry, start, end, row))
+
+        def correction(points: np.ndarray) -> np.ndarray:
+            u = points.astype(np.int32)[:, :, None] - entry
+            np.maximum(u, start, out=u)
+            np.minimum(u, end, out=u)
+            u += row
+            return np.matmul(flat[u], risk[:, :, None])[:, :, 0] - base
+
+        return day, correction
 
 
 @dataclass(frozen=True)

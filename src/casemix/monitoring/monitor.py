@@ -170,7 +170,7 @@ def monitor(
         )
     hazard = _hazard_table(model, horizon)
     days = int((last - first).days)
-    dates = pd.date_range(first, last, freq="D")
+    dates = pd.date_range(first, last, freq="D").strftime("%Y-%m-%d").to_numpy(dtype=object)
     state, signals, series = [], [], []
     for program in _programs(cohort, model, first, last, horizon):
         rows = _program_rows(program, hazard, days, dates, rules)
@@ -269,11 +269,11 @@ def _program_rows(program: _Program, hazard, days: int, dates, rules: Monitoring
         paths[chart] = g
         since = _restart_points(hits, rules.restart)
         for position, origin in zip(hits, since, strict=True):
-            signals.append([program.code, chart, dates[position].date().isoformat(),
+            signals.append([program.code, chart, dates[position],
                             g[position], limit["h"],
                             observed[position] - (observed[origin] if origin >= 0 else 0.0),
                             expected[position] - (expected[origin] if origin >= 0 else 0.0)])
-        hit_dates = [dates[p].date().isoformat() for p in hits]
+        hit_dates = [dates[p] for p in hits]
         state.append({
             "program": program.code, "chart": chart, "rho": rho,
             "recipients": int(program.entry.size), "observed": int(observed[-1]),
@@ -285,7 +285,7 @@ def _program_rows(program: _Program, hazard, days: int, dates, rules: Monitoring
         })
     series = pd.DataFrame({
         "program": program.code,
-        "date": [d.date().isoformat() for d in dates],
+        "date": dates,
         "day": np.arange(days + 1),
         "observed": observed.astype(np.int64),
         "expected": expected,
