@@ -165,7 +165,9 @@ def load_rules(path: str | Path) -> Rules:
     ------
     RulesError
         A file that cannot be read, is not valid TOML, has no ``[verdict]`` table, has other
-        top-level keys, or whose values are invalid; the message names the file and the key.
+        top-level keys (a ``[monitoring]`` table is allowed and read by
+        :func:`casemix.monitoring.load_monitoring_rules`), or whose values are invalid; the
+        message names the file and the key.
     """
     path = Path(path)
     try:
@@ -174,11 +176,11 @@ def load_rules(path: str | Path) -> Rules:
         raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
-    other = sorted(set(document) - {"verdict"})
+    other = sorted(set(document) - {"verdict", "monitoring"})
     if other:
         raise RulesError(
             f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only a [verdict] table is allowed."
+            "only [verdict] and [monitoring] tables are allowed."
         )
     if "verdict" not in document:
         raise RulesError(
