@@ -9,6 +9,8 @@ The stages, in the order data flow through them::
     cohort = casemix.read_records("cohort.csv", spec, cutoff="2025-06-30")
     result = casemix.evaluation.evaluate(cohort, model, rules="rules.toml")
     result.save("results")
+    watch = casemix.monitor(cohort, "model.json", "2024-01-01", "2025-06-30", "rules.toml")
+    watch.save("monitoring")  # state.csv: each program's CUSUM charts now
 """
 
 from importlib.metadata import PackageNotFoundError, version
@@ -24,6 +26,7 @@ from casemix.data.records import Records, read_records
 from casemix.data.spec import Spec, load_spec
 from casemix.evaluation.evaluate import Evaluation, evaluate
 from casemix.model.reference import ReferenceModel, fit_reference
+from casemix.monitoring import Monitoring, MonitoringRules, monitor
 from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior
 from casemix.stats.verdict import Rules, load_rules
 
@@ -31,6 +34,8 @@ __all__ = [
     "Cohort",
     "Design",
     "Evaluation",
+    "Monitoring",
+    "MonitoringRules",
     "Prior",
     "Records",
     "ReferenceModel",
@@ -44,5 +49,6 @@ __all__ = [
     "fixed_prior",
     "load_rules",
     "load_spec",
+    "monitor",
     "read_records",
 ]

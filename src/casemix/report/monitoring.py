@@ -40,6 +40,13 @@ _UP = verdict_colours()["excess"]  # the report's colour for more events than ex
 _DOWN = verdict_colours()["favorable"]  # and for fewer
 _BAND = "#c9ced3"
 
+_CAPTION = (
+    "Left: the chart for a raised hazard (above zero) and for a lowered hazard (mirrored "
+    "below zero) with their limits; a marker on each signal. Right: cumulative observed minus "
+    "expected events with the band a program with hazard ratio 1 stays inside on any one day "
+    "with probability 95%."
+)
+
 REFERENCES = (
     "Biswas P, Kalbfleisch JD. A risk-adjusted CUSUM in continuous time based on the Cox "
     "model. Statistics in Medicine 2008;27:3382-3406.",
@@ -147,13 +154,11 @@ def monitoring_section(monitoring) -> Section:
             int(upper.loc["upper", "recipients"]), int(upper.loc["upper", "observed"]),
             float(upper.loc["upper", "expected"]), int(upper.loc["upper", "signals"]),
             int(upper.loc["lower", "signals"]))
+        svg = Markup(figure_svg(fig, alt=f"Monitoring charts of program {code}"))
+        anchor = anchor_for(code, prefix=f"monitor-{len(blocks)}")
         blocks.append(Markup('<div class="program" id="{}"><h3>{}</h3>{}<figure>{}'
                              "<figcaption>{}</figcaption></figure></div>").format(
-            anchor_for(code, prefix=f"monitor-{len(blocks)}"), code, facts, Markup(figure_svg(fig, alt=f"Monitoring charts of program {code}")),
-            "Left: the chart for a raised hazard (above zero) and for a lowered hazard "
-            "(mirrored below zero) with their limits; a marker on each signal. Right: "
-            "cumulative observed minus expected events with the band a program with hazard "
-            "ratio 1 stays inside on any one day with probability 95%."))
+            anchor, code, facts, svg, _CAPTION))
     return Section("Monitoring between evaluations", Markup("").join(blocks),
                    anchor="monitoring")
 
