@@ -453,8 +453,8 @@ def monitor(
     """Monitor every program between evaluations: CUSUM charts and observed minus expected.
 
     Follows the recipients transplanted from --from to the cut-off day by day against the
-    reference model; writes state.csv, signals.csv, series.csv, monitoring.json and
-    monitoring.html into the folder.
+    reference model; writes monitoring_state.csv, monitoring_signals.csv,
+    monitoring_series.csv, monitoring.json and monitoring.html into the folder.
 
     Example: casemix monitor cohort.csv --model model.json --from 2024-01-01
     --cutoff 2025-06-30 --out monitoring
@@ -501,8 +501,8 @@ def demo(
     """Run the whole job on the invented Lorran Valley demo network.
 
     Writes reference.csv, cohort.csv, spec.toml, rules.toml, model.json and the evaluation
-    files with report.html into the folder, the monitoring files into its monitoring/
-    folder, and prints a summary.
+    files with report.html into the folder, then the monitoring files (monitoring_*.csv,
+    monitoring.json, monitoring.html), and prints a summary.
 
     Example: casemix demo --out demo_out
     """
@@ -541,15 +541,14 @@ def demo(
         _write_report(out_dir)
         step("monitoring programs")
         monitoring = _monitor_files(cohort, out_dir / "model.json", scenario.COHORT_WINDOW[0],
-                                    scenario.COHORT_CUTOFF, paths["rules"],
-                                    out_dir / "monitoring")
+                                    scenario.COHORT_CUTOFF, paths["rules"], out_dir)
         step("done")
     out.print(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
         f"{len(cohort.frame)} cohort recipients in {len(result.programs)} programs"
     )
     _summary(result, out_dir, True)
-    _monitor_summary(monitoring, out_dir / "monitoring")
+    _monitor_summary(monitoring, out_dir)
 
 
 def main() -> None:

@@ -76,7 +76,7 @@ class Monitoring:
         One row per program and day: N, A, O - E with its band, G of both charts.
     rules : MonitoringRules
     run : dict
-        Inputs' fingerprints, dates, rules, versions and cautions (written as monitoring.json).
+        Inputs' fingerprints, dates, rules, versions and cautions (monitoring.json).
     """
 
     state: pd.DataFrame
@@ -86,12 +86,13 @@ class Monitoring:
     run: dict[str, Any]
 
     def save(self, folder: str | Path) -> Path:
-        """Write state.csv, signals.csv, series.csv and monitoring.json into ``folder``."""
+        """Write monitoring_state.csv, monitoring_signals.csv, monitoring_series.csv and
+        monitoring.json into ``folder`` (created if missing), each atomically."""
         folder = Path(folder)
         folder.mkdir(parents=True, exist_ok=True)
-        write_csv(folder / "state.csv", self.state)
-        write_csv(folder / "signals.csv", self.signals)
-        write_csv(folder / "series.csv", self.series)
+        write_csv(folder / "monitoring_state.csv", self.state)
+        write_csv(folder / "monitoring_signals.csv", self.signals)
+        write_csv(folder / "monitoring_series.csv", self.series)
         write_json(folder / "monitoring.json", self.run)
         return folder
 

@@ -187,7 +187,7 @@ def _method_section(monitoring) -> Section:
         "evidence runs the other way; the chart for a lowered hazard does the same for {}. "
         "The Monte Carlo error of each simulated limit (a 95% interval from the order "
         "statistics, and the standard error of the simulated false-signal share) is in "
-        "state.csv.</p>").format(f"{rules.rho_up:g}", f"{rules.rho_down:g}")
+        "monitoring_state.csv.</p>").format(f"{rules.rho_up:g}", f"{rules.rho_down:g}")
     return Section("Method", Markup("").join([facts, text]), anchor="method")
 
 

@@ -180,7 +180,7 @@ def load_rules(path: str | Path) -> Rules:
     if other:
         raise RulesError(
             f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only [verdict] and [monitoring] tables are allowed."
+            "only a [verdict] table (and a [monitoring] table) is allowed."
         )
     if "verdict" not in document:
         raise RulesError(
