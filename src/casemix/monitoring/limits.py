@@ -2,12 +2,13 @@
 
 Under hazard ratio 1, each of the program's recipients fails at a time drawn from his or her
 own cumulative hazard exp(lp) H0(u) by inversion of the step function (the first day u with
-exp(lp) H0(u) >= an Exp(1) draw), censored at the follow-up that could have been observed
-(the horizon or the cut-off; earlier for recipients lost to follow-up). Each simulated history
-gives the largest G over the period of each chart; the limit h is the smallest value that at
-most ``level`` of the histories reach. All replicates of a program are drawn at once
-(numpy, vectorised); the random stream of a program depends only on the seed and its code, so
-the limits do not depend on which programs are monitored together or in which order.
+exp(lp) H0(u) >= an Exp(1) draw), censored where his or her follow-up ended (for recipients
+with an observed event, where it could have ended: the horizon or the cut-off). Each
+simulated history gives the largest G over the period of each chart; the limit h is the
+smallest value that at most ``level`` of the histories reach. All replicates of a program
+are drawn at once (numpy, vectorised); the random stream of a program depends only on the
+seed and its code, so the limits do not depend on which programs are monitored together or
+in which order.
 
 Monte Carlo error: the share of histories that reach h is reported with its binomial
 standard error, and a distribution-free 95% interval for h itself from the order statistics of
