@@ -579,8 +579,9 @@ def _raise_hazard(
     if RISE.factor == 1.0:
         return frame
     rng = np.random.default_rng([int(seed), RISE.stream])
-    mine = (frame["program"] == RISE.program).to_numpy()
-    mine &= ~frame["recipient_id"].isin(planted["recipient_id"]).to_numpy()
+    mine = (frame["program"] == RISE.program).to_numpy() & ~frame["recipient_id"].isin(
+        planted["recipient_id"]
+    ).to_numpy()
     draw = rng.exponential(size=int(mine.sum()))
     tx = _days_since_epoch(frame.loc[mine, "transplant_date"])
     start = np.maximum(_day(RISE.start) - tx, 0.0)  # days after the transplant the rise begins
