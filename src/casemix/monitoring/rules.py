@@ -16,18 +16,13 @@ Example (every key optional; these are the defaults)::
 from __future__ import annotations
 
 import math
-import sys
 from collections.abc import Mapping
 from dataclasses import asdict, dataclass
 from pathlib import Path
 from typing import Any
 
 from casemix.errors import RulesError
-
-if sys.version_info >= (3, 11):
-    import tomllib
-else:  # pragma: no cover - exercised only on Python 3.10
-    import tomli as tomllib
+from casemix.stats.verdict import read_rules_document
 
 __all__ = ["MonitoringRules", "load_monitoring_rules", "monitoring_rules_from_dict"]
 
@@ -142,17 +137,12 @@ def load_monitoring_rules(path: str | Path | None) -> MonitoringRules:
     Raises
     ------
     RulesError
-        A file that cannot be read or is not valid TOML, or invalid values.
+        A file that cannot be read, is not valid TOML or has top-level keys other than
+        ``[verdict]`` and ``[monitoring]``, or invalid values.
     """
     if path is None:
         return MonitoringRules()
     path = Path(path)
-    try:
-        document = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
     return monitoring_rules_from_dict(
-        document.get("monitoring", {}), source=f"rules file {path}"
+        read_rules_document(path).get("monitoring", {}), source=f"rules file {path}"
     )

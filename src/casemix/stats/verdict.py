@@ -42,6 +42,7 @@ __all__ = [
     "Rules",
     "assign_verdicts",
     "load_rules",
+    "read_rules_document",
     "rules_from_dict",
     "verdict_colours",
 ]
@@ -144,6 +145,30 @@ def rules_from_dict(values: Mapping[str, Any], *, source: str = "rules") -> Rule
     return Rules(**{key: float(merged[key]) for key in allowed})
 
 
+def read_rules_document(path: str | Path) -> dict[str, Any]:
+    """Parse a rules file: its ``[verdict]`` and ``[monitoring]`` tables, nothing else.
+
+    Raises
+    ------
+    RulesError
+        A file that cannot be read, is not valid TOML or has other top-level keys.
+    """
+    path = Path(path)
+    try:
+        document = tomllib.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
+    other = sorted(set(document) - {"verdict", "monitoring"})
+    if other:
+        raise RulesError(
+            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
+            "only a [verdict] table (and a [monitoring] table) is allowed."
+        )
+    return document
+
+
 def load_rules(path: str | Path) -> Rules:
     """Read verdict rules from a TOML file with one ``[verdict]`` table.
 
@@ -170,18 +195,7 @@ def load_rules(path: str | Path) -> Rules:
         message names the file and the key.
     """
     path = Path(path)
-    try:
-        document = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
-    other = sorted(set(document) - {"verdict", "monitoring"})
-    if other:
-        raise RulesError(
-            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only a [verdict] table (and a [monitoring] table) is allowed."
-        )
+    document = read_rules_document(path)
     if "verdict" not in document:
         raise RulesError(
             f"rules file {path} has no [verdict] table; add a line [verdict] above the keys "
