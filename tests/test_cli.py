@@ -35,9 +35,11 @@ PROGRAMS = [f"LV{i:02d}" for i in range(1, 17)]
 DEMO_FILES = [
     "reference.csv", "cohort.csv", "spec.toml", "rules.toml", "model.json",
     "programs.csv", "recipients.csv", "exclusions.csv", "run.json", "report.html",
+    "monitoring_state.csv", "monitoring_signals.csv", "monitoring_series.csv",
+    "monitoring.json", "monitoring.html",
 ]
 EVALUATION_FILES = ["programs.csv", "recipients.csv", "exclusions.csv", "run.json"]
-COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit"]
+COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit", "monitor"]
 REFERENCE_CUTOFF, COHORT_CUTOFF = "2022-12-31", "2025-06-30"
 
 
@@ -498,6 +500,53 @@ def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",
                     "--out", tmp_path / "audit")
     assert_exit(result, 2, "--cutoff 'June 2025' is not a date")
+
+
+# --- monitor ----------------------------------------------------------------------------
+
+
+def test_demo_monitoring_finds_the_rising_program(demo_dir, demo_run):
+    # Generator truth (casemix.demo.RISE): LV02's hazard doubles from 2023-07-01.
+    state = pd.read_csv(demo_dir / "monitoring_state.csv").set_index(["program", "chart"])
+    assert state.loc[("LV02", "upper"), "signalled"]
+    assert state.loc[("LV02", "upper"), "first_signal"] > "2023-07-01"
+    assert "LV02: raised-hazard chart signalled on" in demo_run[1].output
+    assert "A signal is a prompt to look closer" in demo_run[1].output
+
+
+def _monitor_rules(folder: Path, body: str) -> Path:
+    path = folder / "monitor_rules.toml"
+    path.write_text(f"[verdict]\n[monitoring]\n{body}\n", encoding="utf-8")
+    return path
+
+
+def test_monitor_writes_its_files_and_page(demo_dir, tmp_path):
+    rules = _monitor_rules(tmp_path, "replicates = 200\nseed = 5")
+    out = tmp_path / "watch"
+    result = invoke("monitor", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                    "--from", "2024-01-01", "--cutoff", COHORT_CUTOFF, "--rules", rules,
+                    "--out", out)
+    assert_exit(result, 0, "16 programs monitored from 2024-01-01 to 2025-06-30",
+                "not a finding about quality of care")
+    for name in ("monitoring_state.csv", "monitoring_signals.csv", "monitoring_series.csv",
+                 "monitoring.json", "monitoring.html"):
+        assert (out / name).is_file(), name
+    state = pd.read_csv(out / "monitoring_state.csv")
+    assert len(state) == 32 and set(state["h_source"]) == {"simulated"}
+    assert "Read this first" in (out / "monitoring.html").read_text(encoding="utf-8")
+
+
+@pytest.mark.parametrize(("args", "body", "message"), [
+    (("--from", "2025-07-01"), "", "monitoring start 2025-07-01 is after the cut-off"),
+    (("--from", "2024-01-01"), "rho_up = 1.0", r"rho_up must be a hazard ratio above 1"),
+    (("--from", "2024-01-01"), "level = 1.5", r"level must be a probability strictly"),
+    (("--from", "2024-01-01"), "horizon_days = 400", r"horizon is 365 days"),
+])
+def test_monitor_bad_input_is_a_clear_error(demo_dir, tmp_path, args, body, message):
+    result = invoke("monitor", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                    *args, "--cutoff", COHORT_CUTOFF, "--rules", _monitor_rules(tmp_path, body),
+                    "--out", tmp_path / "watch")
+    assert_exit(result, 1, message)
 
 
 # --- version and help -------------------------------------------------------------------

@@ -8,6 +8,7 @@ that the shipped spec is valid.
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as dt
 import importlib.util
 import sys
@@ -32,6 +33,7 @@ else:  # pragma: no cover - Python 3.10 only
 EXAMPLE = Path(__file__).resolve().parents[1] / "examples" / "lorran_valley"
 EVENTS = ["graft_loss_date", "retransplant_date", "death_date"]
 HARD, FAVORABLE, HIDDEN_EXCESS = "LV03", "LV04", "LV05"
+RISING = demo.RISE.program
 SMALL = ("LV09", "LV14")
 
 
@@ -192,7 +194,7 @@ def test_spec_is_valid_and_names_extract_columns(network, tmp_path):
     assert set(spec.required_columns) <= set(network.cohort.columns)
 
 
-def test_rules_file_has_the_verdict_and_prior_tables(network):
+def test_rules_file_has_the_verdict_prior_and_monitoring_tables(network):
     rules = tomllib.loads(network.rules_text)
     assert rules == {"verdict": {"probability": 0.975, "upper_margin": 1.0,
                                  "lower_margin": 1.0, "min_expected": 1.0,
@@ -235,7 +237,7 @@ def test_truth_table(network):
     truth = network.truth.set_index("program")
     assert list(network.truth.columns) == [
         "program", "true_hr", "recipients_reference", "recipients_cohort", "story",
-        "reference_hr",
+        "reference_hr", "rise_from", "rise_factor",
     ]
     for role in ("reference", "cohort"):
         counts = getattr(network, role)["program"].value_counts()
@@ -250,6 +252,9 @@ def test_truth_table(network):
     weights = truth["recipients_reference"]
     assert abs(np.average(np.log(truth["reference_hr"]), weights=weights)) < 1e-3
     assert truth["story"].str.len().gt(20).all()
+    rising = truth[truth["rise_factor"] != 1.0]
+    assert list(rising.index) == [RISING] and rising["rise_factor"].item() == 2.0
+    assert rising["rise_from"].item() == demo.RISE.start.isoformat()
 
 
 def test_windows_and_cutoffs(network):
@@ -382,12 +387,57 @@ def test_lifelines_cox_recovers_program_hazard_ratios(network):
     data = _simple_encoding(frame).join(programs)
     data = data.join(_graft_failure(frame, _cutoff(network, "cohort"))).dropna()
     # Reference library: lifelines CoxPHFitter; LV01 (true HR 1.0) is the reference program.
+    # The rising program's hazard ratio changes in time (see the next test).
     fit = lifelines().CoxPHFitter().fit(data, "time", "event")
-    truth = np.log(network.truth.set_index("program")["true_hr"].drop("LV01"))
+    truth = np.log(network.truth.set_index("program")["true_hr"].drop(["LV01", RISING]))
     z = (fit.params_[truth.index] - truth) / fit.standard_errors_[truth.index]
     assert z.abs().max() < 3.0, z.round(2).to_dict()
     assert fit.params_[HIDDEN_EXCESS] - 2 * fit.standard_errors_[HIDDEN_EXCESS] > 0
     assert fit.params_[FAVORABLE] + 2 * fit.standard_errors_[FAVORABLE] < 0
+
+
+def test_rising_program_doubles_its_hazard_from_the_rise_date(network):
+    """Follow-up split at the rise date (counting process, delayed entry after it); a Cox
+    fit (lifelines CoxPHFitter, entry_col) of the clean cohort with the generator's
+    covariates, program terms, and a term for the rising program after its rise."""
+    frame = _clean(network, "cohort")
+    outcome = _graft_failure(frame, _cutoff(network, "cohort"))
+    covariates = _simple_encoding(frame).assign(program=frame["program"]).join(outcome)
+    covariates = covariates.dropna()
+    rise = (pd.Timestamp(demo.RISE.start) - frame["transplant_date"]).dt.days
+    rise = rise.loc[covariates.index]
+    before = covariates.assign(entry=0.0, stop=np.minimum(covariates["time"],
+                                                          rise.clip(lower=0)), after=0.0)
+    before["event"] = before["event"] * (covariates["time"] <= before["stop"])
+    after = covariates[covariates["time"] > rise.clip(lower=0)].assign(
+        entry=rise.clip(lower=0), stop=covariates["time"], after=1.0)
+    pieces = pd.concat([before[before["stop"] > before["entry"]], after])
+    pieces = pieces[pieces["stop"] > pieces["entry"]]
+    pieces["rising_after"] = pieces["after"] * (pieces["program"] == RISING)
+    dummies = pd.get_dummies(pieces["program"], dtype=float).drop(columns="LV01")
+    data = pieces.drop(columns=["program", "time", "after"]).join(dummies)
+    fit = lifelines().CoxPHFitter().fit(data, "stop", "event", entry_col="entry")
+    # truth: the program's hazard ratio is true_hr before the rise and twice that after it
+    true_hr = network.truth.set_index("program").loc[RISING, "true_hr"]
+    z_before = (fit.params_[RISING] - np.log(true_hr)) / fit.standard_errors_[RISING]
+    z_rise = (fit.params_["rising_after"] - np.log(2.0)) / fit.standard_errors_["rising_after"]
+    assert abs(z_before) < 3.0 and abs(z_rise) < 3.0, (z_before, z_rise)
+    assert fit.params_["rising_after"] - 2 * fit.standard_errors_["rising_after"] > 0
+
+
+def test_the_rise_leaves_every_other_record_as_it_was(network, monkeypatch):
+    """The records drawn without the rise are the same except the rising program's later
+    graft-loss dates; the rise's own generator is the only thing that differs."""
+    monkeypatch.setattr(demo, "RISE", dataclasses.replace(demo.RISE, factor=1.0))
+    without = demo.generate()
+    monkeypatch.undo()
+    pd.testing.assert_frame_equal(without.reference, network.reference)
+    changed = (without.cohort.fillna(-1).astype(str) != network.cohort.fillna(-1).astype(str))
+    rows = changed.any(axis=1)
+    assert rows.sum() > 10
+    assert set(network.cohort.loc[rows, "program"]) == {RISING}
+    assert list(changed.columns[changed.any()]) == ["graft_loss_date"]
+    assert (network.cohort.loc[rows, "graft_loss_date"] >= pd.Timestamp(demo.RISE.start)).all()
 
 
 def test_raw_one_year_failure_tells_the_stories(network):

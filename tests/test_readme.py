@@ -165,7 +165,7 @@ def test_main_job_command_writes_the_demo_report(demo_folder):
 def test_own_extract_commands_are_casemix_commands():
     assert [shlex.split(c)[:2] for c in OWN_EXTRACT] == [
         ["casemix", "check"], ["casemix", "fit"], ["casemix", "evaluate"],
-        ["casemix", "report"], ["casemix", "audit"]]
+        ["casemix", "report"], ["casemix", "audit"], ["casemix", "monitor"]]
 
 
 @pytest.fixture(scope="module")
@@ -198,6 +198,9 @@ def _products(command: str) -> list[str]:
         return [f"{args[2]}/report.html", f"{args[2]}/public/programs.csv"]
     if verb == "audit":
         return [f"{_option(command, '--out')}/findings.json"]
+    if verb == "monitor":
+        out = _option(command, "--out")
+        return [f"{out}/{name}" for name in ("monitoring_state.csv", "monitoring.html")]
     return []
 
 

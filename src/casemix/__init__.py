@@ -29,14 +29,17 @@ _PUBLIC = {
     "evaluate": "casemix.evaluation.evaluate",
     "ReferenceModel": "casemix.model.reference",
     "fit_reference": "casemix.model.reference",
+    "Monitoring": "casemix.monitoring.monitor",
+    "MonitoringRules": "casemix.monitoring.rules",
+    "monitor": "casemix.monitoring.monitor",
     "Prior": "casemix.stats.shrinkage",
     "empirical_bayes_prior": "casemix.stats.shrinkage",
     "fixed_prior": "casemix.stats.shrinkage",
     "Rules": "casemix.stats.verdict",
     "load_rules": "casemix.stats.verdict",
 }
-_SUBPACKAGES = ("audit", "data", "demo", "errors", "evaluation", "model", "report", "stats",
-                "survival")
+_SUBPACKAGES = ("audit", "data", "demo", "errors", "evaluation", "model", "monitoring",
+                "report", "stats", "survival")
 
 if TYPE_CHECKING:
     from casemix.data.cohort import Cohort, build_cohort
@@ -45,6 +48,8 @@ if TYPE_CHECKING:
     from casemix.data.spec import Spec, load_spec
     from casemix.evaluation.evaluate import Evaluation, evaluate
     from casemix.model.reference import ReferenceModel, fit_reference
+    from casemix.monitoring.monitor import Monitoring, monitor
+    from casemix.monitoring.rules import MonitoringRules
     from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior
     from casemix.stats.verdict import Rules, load_rules
 
@@ -79,6 +84,8 @@ __all__ = [
     "Cohort",
     "Design",
     "Evaluation",
+    "Monitoring",
+    "MonitoringRules",
     "Prior",
     "Records",
     "ReferenceModel",
@@ -92,5 +99,6 @@ __all__ = [
     "fixed_prior",
     "load_rules",
     "load_spec",
+    "monitor",
     "read_records",
 ]

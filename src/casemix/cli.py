@@ -458,6 +458,62 @@ def audit(
 
 
 @app.command()
+def monitor(
+    records: ExistingFile,
+    model: ModelOption,
+    start: Annotated[
+        str, typer.Option("--from", help="First day of monitoring (YYYY-MM-DD).")
+    ],
+    out_dir: OutDirOption,
+    cutoff: CutoffOption = None,
+    rules: Annotated[
+        Path | None,
+        typer.Option("--rules", exists=True, dir_okay=False,
+                     help="Rules file; its [monitoring] table sets rho, level, limits."),
+    ] = None,
+) -> None:
+    """Monitor every program between evaluations: CUSUM charts and observed minus expected.
+
+    Follows the recipients transplanted from --from to the cut-off day by day against the
+    reference model; writes monitoring_state.csv, monitoring_signals.csv,
+    monitoring_series.csv, monitoring.json and monitoring.html into the folder.
+
+    Example: casemix monitor cohort.csv --model model.json --from 2024-01-01
+    --cutoff 2025-06-30 --out monitoring
+    """
+    with _guarded(), _steps(2) as step:
+        step("simulating control limits")
+        result = _monitor_files(records, model, _date(start, "--from"),
+                                _date(cutoff, "--cutoff"), rules, out_dir)
+        step("done")
+    _monitor_summary(result, out_dir)
+
+
+def _monitor_files(records, model, start, cutoff, rules, out_dir: Path):
+    from casemix.monitoring import monitor as run_monitoring
+    from casemix.report.monitoring import write_monitoring_page
+
+    result = run_monitoring(records, model, start, cutoff, rules)
+    result.save(out_dir)
+    write_monitoring_page(result, out_dir / "monitoring.html")
+    return result
+
+
+def _monitor_summary(result, folder: Path) -> None:
+    state = result.state
+    signalled = state[state["signalled"]]
+    out.print(f"{state['program'].nunique()} programs monitored from {result.run['start']} to "
+              f"{result.run['cutoff']}; {len(signalled)} of {len(state)} charts signalled")
+    for row in signalled.itertuples(index=False):
+        word = "raised" if row.chart == "upper" else "lowered"
+        out.print(f"- {row.program}: {word}-hazard chart signalled on {row.signal_dates} "
+                  f"(observed {row.observed}, expected {row.expected:.1f} since the start)")
+    out.print("A signal is a prompt to look closer, not a finding about quality of care; "
+              "decisions belong to clinical review.")
+    out.print(f"monitoring: {folder / 'monitoring.html'}")
+
+
+@app.command()
 def demo(
     out_dir: Annotated[
         Path, typer.Option("--out", file_okay=False, help="Folder for every demo file.")
@@ -467,7 +523,8 @@ def demo(
     """Run the whole job on the invented Lorran Valley demo network.
 
     Writes reference.csv, cohort.csv, spec.toml, rules.toml, model.json and the evaluation
-    files with report.html into the folder, and prints a summary.
+    files with report.html into the folder, then the monitoring files (monitoring_*.csv,
+    monitoring.json, monitoring.html), and prints a summary.
 
     Example: casemix demo --out demo_out
     """
@@ -476,7 +533,7 @@ def demo(
     from casemix.evaluation.evaluate import evaluate as run_evaluation
     from casemix.model.reference import fit_reference
 
-    with _guarded(), _steps(5) as step:
+    with _guarded(), _steps(6) as step:
         paths = scenario.write_demo(out_dir, seed=seed)
         step("fitting the reference model")
         reference = read_records(
@@ -504,6 +561,9 @@ def demo(
         result.save(out_dir)
         step("writing the report")
         _write_report(out_dir)
+        step("monitoring programs")
+        monitoring = _monitor_files(cohort, out_dir / "model.json", scenario.COHORT_WINDOW[0],
+                                    scenario.COHORT_CUTOFF, paths["rules"], out_dir)
         step("done")
     out.print(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
@@ -511,6 +571,7 @@ def demo(
         f"{plural(len(result.programs), 'program')}"
     )
     _summary(result, out_dir, True)
+    _monitor_summary(monitoring, out_dir)
 
 
 def main() -> None:

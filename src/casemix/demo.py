@@ -7,7 +7,10 @@ correlations; graft failure is drawn from a known Weibull proportional-hazards m
 covariate effects are :data:`TRUE_LOG_HAZARD_RATIOS`, times a per-program hazard ratio
 (``truth.true_hr`` in the cohort, a milder ``truth.reference_hr`` in the reference
 population). A few records are broken on purpose (``DemoNetwork.planted``) so that the
-validation story shows.
+validation story shows. One program's hazard rises part-way through the cohort period
+(:data:`RISE`), for the monitoring story: from the rise date on, its recipients carry an
+extra graft-loss hazard on top of the one drawn with everyone else's, drawn from a generator
+of its own, so that every other record is the same as without the rise.
 
 Graft failure is the earliest of graft loss, re-transplant and death with a working graft.
 The failure time comes from the all-cause hazard and its cause is drawn afterwards (older
@@ -41,6 +44,7 @@ __all__ = [
     "COLUMNS",
     "REFERENCE_CUTOFF",
     "REFERENCE_WINDOW",
+    "RISE",
     "TRUE_LOG_HAZARD_RATIOS",
     "WEIBULL_SCALE_DAYS",
     "WEIBULL_SHAPE",
@@ -150,7 +154,12 @@ class _Program:
 _NEAR = "typical case mix; true hazard ratio near 1"
 _PROGRAMS = (
     _Program("LV01", 2750, 700, 1.00, "large program; " + _NEAR),
-    _Program("LV02", 1600, 380, 0.90, _NEAR),
+    _Program(
+        "LV02", 1600, 380, 0.90,
+        "typical case mix; true hazard ratio 0.9 until mid-2023, then graft failures twice "
+        "as frequent from 2023-07-01: a rise part-way through the cohort period that the "
+        "evaluation of the whole cohort hardly shows and monitoring picks up",
+    ),
     _Program(
         "LV03", 1900, 460, 1.00,
         "hard case mix: older and diabetic recipients, older donors, few living donors; "
@@ -194,6 +203,19 @@ _PROGRAMS = (
     _Program("LV16", 430, 110, 0.88, _NEAR),
 )
 
+@dataclass(frozen=True)
+class _Rise:
+    """A program whose graft-failure hazard is multiplied by ``factor`` from ``start`` on."""
+
+    program: str
+    start: dt.date
+    factor: float
+    stream: int  # second seed word of the rise's own generator: [seed, stream]
+
+
+#: The cohort program whose hazard doubles part-way through the cohort period.
+RISE = _Rise("LV02", dt.date(2023, 7, 1), 2.0, 2)
+
 _ROLES = ("reference", "cohort")
 _EPOCH = dt.date(1970, 1, 1)
 
@@ -209,10 +231,12 @@ class DemoNetwork:
         Dates are ``datetime64`` (``NaT`` when none), ``diabetes`` is nullable ``Int64``.
     cohort : pandas.DataFrame, shape (about 5 000, 18)
         The evaluation-cohort extract, same columns; recipient ids continue the reference's.
-    truth : pandas.DataFrame, shape (16, 6)
+    truth : pandas.DataFrame, shape (16, 8)
         Per program: ``program``, ``true_hr`` (cohort hazard ratio against the network),
-        ``recipients_reference``, ``recipients_cohort`` (rows in each file), ``story`` and
-        ``reference_hr`` (the milder hazard ratio used in the reference population).
+        ``recipients_reference``, ``recipients_cohort`` (rows in each file), ``story``,
+        ``reference_hr`` (the milder hazard ratio used in the reference population),
+        ``rise_from`` (the day the program's hazard rises, ``None`` for most) and
+        ``rise_factor`` (how much it rises by; 1 for most).
     planted : pandas.DataFrame
         The records broken on purpose: ``role`` (``reference`` / ``cohort``),
         ``recipient_id``, ``problem`` and ``handling`` (``excluded`` or ``kept, warned``).
@@ -262,10 +286,11 @@ def generate(seed: int = 2026) -> DemoNetwork:
     frames, planted = {}, []
     first_id = 1
     for role in _ROLES:
-        frame = _simulate(rng, role, profiles, first_id)
+        frame, eta = _simulate(rng, role, profiles, first_id)
         first_id += len(frame)
         frames[role], marks = _plant_problems(rng, frame, role)
         planted.append(marks)
+    frames["cohort"] = _raise_hazard(frames["cohort"], eta, planted[-1], seed)
     return DemoNetwork(
         reference=frames["reference"],
         cohort=frames["cohort"],
@@ -370,7 +395,8 @@ def _program_profiles(rng: np.random.Generator) -> dict[str, np.ndarray]:
 def _simulate(
     rng: np.random.Generator, role: str, profiles: dict[str, np.ndarray], first_id: int
 ) -> pd.DataFrame:
-    """One extract (reference or cohort), sorted by transplant date, ids from ``first_id``."""
+    """One extract (reference or cohort), sorted by transplant date, ids from ``first_id``,
+    and each row's true log relative hazard (program included) in the same order."""
     cohort = role == "cohort"
     sizes = [p.n_cohort if cohort else p.n_reference for p in _PROGRAMS]
     program = np.repeat(np.arange(len(_PROGRAMS)), sizes)
@@ -388,7 +414,7 @@ def _simulate(
     order = np.lexsort((program, transplant))  # by date, then program; stable
     frame = frame.iloc[order].reset_index(drop=True)
     ids = [f"R{i:06d}" for i in range(first_id, first_id + len(frame))]
-    return frame.assign(recipient_id=ids)[list(COLUMNS)]
+    return frame.assign(recipient_id=ids)[list(COLUMNS)], eta[order]
 
 
 def _reference_hr() -> np.ndarray:
@@ -553,6 +579,45 @@ def _assemble(
     return pd.DataFrame(columns)
 
 
+def _raise_hazard(
+    frame: pd.DataFrame, eta: np.ndarray, planted: pd.DataFrame, seed: int
+) -> pd.DataFrame:
+    """Give the :data:`RISE` program's recipients an extra graft loss from the rise date on.
+
+    The extra hazard, (factor - 1) times each recipient's own, on calendar days from the rise
+    on, competes with the failure already drawn: the earlier of the two is the failure, so
+    the hazard after the rise is ``factor`` times the one before. The draws come from a
+    generator of their own (seeded ``[seed, RISE.stream]``), one per row of the program, and
+    only the graft-loss dates of the program's recipients (planted records left alone) can
+    change.
+    """
+    if RISE.factor == 1.0:
+        return frame
+    rng = np.random.default_rng([int(seed), RISE.stream])
+    mine = (frame["program"] == RISE.program).to_numpy() & ~frame["recipient_id"].isin(
+        planted["recipient_id"]
+    ).to_numpy()
+    draw = rng.exponential(size=int(mine.sum()))
+    tx = _days_since_epoch(frame.loc[mine, "transplant_date"])
+    start = np.maximum(_day(RISE.start) - tx, 0.0)  # days after the transplant the rise begins
+    # (u / scale)^shape - (start / scale)^shape = draw / ((factor - 1) exp(eta)), solved for u
+    scaled = draw * np.exp(-eta[mine]) / (RISE.factor - 1.0) + (
+        start / WEIBULL_SCALE_DAYS
+    ) ** WEIBULL_SHAPE
+    extra = tx + np.floor(WEIBULL_SCALE_DAYS * scaled ** (1.0 / WEIBULL_SHAPE))
+    rows = frame.loc[mine]
+    seen = _days_since_epoch(rows["last_seen_date"])
+    earliest = _days_since_epoch(rows[list(_EVENT_COLUMNS)].min(axis=1))
+    sooner = (extra <= seen) & (np.isnan(earliest) | (extra < earliest))
+    frame = frame.copy()
+    frame.loc[rows.index[sooner], "graft_loss_date"] = pd.to_datetime(extra[sooner], unit="D")
+    return frame
+
+
+def _days_since_epoch(dates: pd.Series) -> np.ndarray:
+    return ((dates - pd.Timestamp(_EPOCH)) / pd.Timedelta(days=1)).to_numpy(dtype=float)
+
+
 # --- planted problems ---------------------------------------------------------------------
 
 # problem, how the records stage handles it, count in the reference, count in the cohort
@@ -676,5 +741,8 @@ def _truth_table(frames: dict[str, pd.DataFrame]) -> pd.DataFrame:
             "recipients_cohort": counts["cohort"],
             "story": [p.story for p in _PROGRAMS],
             "reference_hr": np.round(_reference_hr(), 4),
+            "rise_from": [RISE.start.isoformat() if p.code == RISE.program else None
+                          for p in _PROGRAMS],
+            "rise_factor": [RISE.factor if p.code == RISE.program else 1.0 for p in _PROGRAMS],
         }
     )

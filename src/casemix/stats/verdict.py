@@ -49,6 +49,7 @@ __all__ = [
     "Rules",
     "assign_verdicts",
     "load_rules",
+    "read_rules_document",
     "rules_from_dict",
     "verdict_colours",
     "verdict_thresholds",
@@ -176,6 +177,30 @@ def rules_from_dict(
     return Rules(**{key: float(merged[key]) for key in allowed}, prior=prior)
 
 
+def read_rules_document(path: str | Path) -> dict[str, Any]:
+    """Parse a rules file: its ``[verdict]``, ``[prior]`` and ``[monitoring]`` tables only.
+
+    Raises
+    ------
+    RulesError
+        A file that cannot be read, is not valid TOML or has other top-level keys.
+    """
+    path = Path(path)
+    try:
+        document = tomllib.loads(path.read_text(encoding="utf-8"))
+    except OSError as exc:
+        raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
+    other = sorted(set(document) - {"verdict", "prior", "monitoring"})
+    if other:
+        raise RulesError(
+            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
+            "only [verdict], [prior] and [monitoring] tables are allowed."
+        )
+    return document
+
+
 def load_rules(path: str | Path) -> Rules:
     """Read verdict rules from a TOML file with one ``[verdict]`` table.
 
@@ -203,21 +228,12 @@ def load_rules(path: str | Path) -> Rules:
     ------
     RulesError
         A file that cannot be read, is not valid TOML, has no ``[verdict]`` table, has other
-        top-level keys, or whose values are invalid; the message names the file and the key.
+        top-level keys (a ``[monitoring]`` table is allowed and read by
+        :func:`casemix.monitoring.load_monitoring_rules`), or whose values are invalid; the
+        message names the file and the key.
     """
     path = Path(path)
-    try:
-        document = tomllib.loads(path.read_text(encoding="utf-8"))
-    except OSError as exc:
-        raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
-    other = sorted(set(document) - {"verdict", "prior"})
-    if other:
-        raise RulesError(
-            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only a [verdict] and a [prior] table are allowed."
-        )
+    document = read_rules_document(path)
     if "verdict" not in document:
         raise RulesError(
             f"rules file {path} has no [verdict] table; add a line [verdict] above the keys "
