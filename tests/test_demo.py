@@ -203,7 +203,9 @@ def test_rules_file_has_the_verdict_prior_and_monitoring_tables(network):
                                "hyperprior": {
                                    "spread": {"distribution": "halfcauchy", "scale": 0.25},
                                    "mean": {"distribution": "lognorm", "s": 1.0,
-                                            "scale": 1.0}}}}
+                                            "scale": 1.0}}},
+                     "monitoring": {"rho_up": 2.0, "rho_down": 0.5, "level": 0.05,
+                                    "restart": True, "replicates": 1000, "seed": 2026}}
     # the file states the defaults: reading it gives the default rules
     assert rules_from_toml(network.rules_text) == Rules()
 
