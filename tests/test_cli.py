@@ -490,6 +490,30 @@ def test_audit_writes_its_folder(demo_dir, network, tmp_path):
     assert (facts["bootstrap"], facts["seed"], facts["cohort_recipients"]) == (20, 1, cohort)
 
 
+def test_audit_of_an_evaluation_with_user_rules_agrees_with_it(demo_dir, tmp_path):
+    rules = tmp_path / "rules.toml"
+    rules.write_text("[verdict]\nprobability = 0.95\nupper_margin = 1.2\n", encoding="utf-8")
+    results, audit = tmp_path / "results", tmp_path / "audit"
+    assert_exit(invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                       "--rules", rules, "--cutoff", COHORT_CUTOFF, "--from", "2022-01-01",
+                       "--no-report", "--out", results), 0)
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--evaluation", results,
+                    "--bootstrap", 2, "--out", audit)
+    assert_exit(result, 0, r"probability 0\.95, margins 1 and 1\.2", r"agree with that "
+                r"evaluation for all 16 programs")
+    facts = json.loads((audit / "audit.json").read_text(encoding="utf-8"))
+    theirs = pd.read_csv(results / "programs.csv").set_index("program")["verdict"]
+    ours = pd.read_csv(audit / "fdr.csv").set_index("program")["verdict"]
+    assert facts["evaluation"]["programs_agreeing"] == 16 and ours.sort_index().equals(
+        theirs.sort_index())
+    assert_exit(invoke("report", results, "--audit", audit), 0)
+    both = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                  "--cohort", demo_dir / "cohort.csv", "--evaluation", results,
+                  "--rules", rules, "--out", tmp_path / "again")
+    assert_exit(both, 1, "give either an evaluation folder or rules")
+
+
 def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
     result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",

@@ -221,10 +221,29 @@ def fdr_findings(table: pd.DataFrame | None) -> list[str]:
     return out
 
 
+def agreement_findings(link: dict | None) -> list[str]:
+    """How the audit's verdicts were made, and whether they were checked against an evaluation."""
+    if link is None:
+        return []
+    rules, prior = link["rules"], link["prior"]
+    how = (
+        f"the audit's verdicts use probability {rules['probability']:g}, margins "
+        f"{rules['lower_margin']:g} and {rules['upper_margin']:g}, and the prior "
+        f"Gamma({prior['shape']:.4g}, {prior['rate']:.4g}) ({prior['method'].replace('_', ' ')})"
+    )
+    if link.get("folder") is None:
+        return [how + "; pass the evaluation folder to check them against an evaluation"]
+    return [
+        f"{how}, as the evaluation in {link['folder']} did (same model fingerprint): its "
+        f"verdicts agree with that evaluation for all {link['programs_agreeing']} programs"
+    ]
+
+
 def all_findings(audit_tables: dict, facts: dict) -> list[str]:
     """Every finding, in the order of the report."""
     t = audit_tables
     return [
+        *agreement_findings(facts.get("evaluation")),
         *ph_findings(t["ph"]),
         *concordance_findings(t["concordance"]),
         *calibration_findings(t["calibration_regression"], t["calibration_risk"]),

@@ -17,8 +17,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from casemix._io import atomic_write_text, write_csv, write_json
+from casemix._io import atomic_write_text, sha256_file, write_csv, write_json
 from casemix.audit._optional import available
+from casemix.audit.agreement import evaluation_settings, verdict_agreement
 from casemix.audit.bootstrap import ProgramArrays, bootstrap_expected, delta_expected
 from casemix.audit.calibration import (
     calibration_by_horizon,
@@ -148,12 +149,15 @@ def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.D
     return tables
 
 
-def _evaluation(cohort_records, model, cutoff, window):
+def _evaluation(cohort_records, model, cutoff, window, settings):
     """The evaluation and the cohort's arrays, rows aligned with ``evaluation.recipients``."""
     records = cohort_records
     if not isinstance(records, Records):
         records = read_records(records, model.spec, cutoff=cutoff)
-    evaluation = evaluate(records, model, cutoff=cutoff, window=window)
+    evaluation = evaluate(
+        records, model, settings["rules"], settings["prior"], free_mean=settings["free_mean"],
+        cutoff=cutoff, window=window,
+    )  # fmt: skip
     cut = cutoff if cutoff is not None else records.cutoff
     _, cut, win = resolve_analysis(model.spec, model.horizon_days, cut, window)
     cohort = build_cohort(records, model.outcome, model.horizon_days, cut, win)
@@ -166,6 +170,28 @@ def _evaluation(cohort_records, model, cutoff, window):
     if not np.array_equal(ids, evaluation.recipients["recipient"].astype(str).to_numpy()):
         raise InputError("the cohort rows do not line up with the evaluation; run it again")
     return evaluation, arrays
+
+
+def _settings(model, cohort_records, rules, prior, free_mean, folder) -> dict[str, Any]:
+    """Rules and prior for the audit's evaluation: given, or read from an evaluation folder."""
+    if folder is None:
+        return {"rules": rules, "prior": prior, "free_mean": free_mean, "folder": None}
+    if rules is not None or prior is not None or free_mean:
+        raise InputError(
+            "give either an evaluation folder or rules and a prior, not both: the audit takes "
+            "the evaluation's own rules and prior from its run.json"
+        )
+    found = evaluation_settings(folder, model.fingerprint)
+    source = getattr(cohort_records, "source", cohort_records)
+    if found.records_sha256 is not None and Path(source).is_file():
+        if sha256_file(source) != found.records_sha256:
+            raise InputError(
+                f"the cohort records {source} are not the file the evaluation in {folder} read "
+                "(their checksum differs); pass the same cohort records"
+            )
+    window = None if found.window == (None, None) else found.window
+    return {"rules": found.rules, "prior": found.prior, "free_mean": False, "folder": folder,
+            "cutoff": found.cutoff, "window": window}  # fmt: skip
 
 
 def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
@@ -271,6 +297,10 @@ def run_audit(
     progress: bool = False,
     cutoff=None,
     window=None,
+    rules=None,
+    prior=None,
+    free_mean: bool = False,
+    evaluation=None,
 ) -> Audit:
     """Run every check of the audit.
 
@@ -292,11 +322,23 @@ def run_audit(
         Show a progress bar on a terminal.
     cutoff, window : optional
         The cohort's cut-off and transplant-date window, as for :func:`casemix.evaluation.evaluate`.
+    rules, prior, free_mean : optional
+        Verdict rules and prior, as for :func:`casemix.evaluation.evaluate`; the audit's
+        verdicts are made with them.
+    evaluation : path, optional
+        An evaluation folder of this cohort: its model fingerprint must be the model's, its
+        rules, prior, cut-off and window are used (give neither ``rules`` nor ``prior``), and
+        the audit's verdicts are checked to be the evaluation's, program by program.
 
     Returns
     -------
     Audit
     """
+    if evaluation is not None and cohort_records is None:
+        raise InputError(
+            "an evaluation folder is checked against its cohort: give the cohort records too "
+            "(--cohort)"
+        )
     model, data = _load(model, reference_records)
     reference_programs = ProgramArrays.build(
         data.time, data.X, data.strata,
@@ -319,7 +361,20 @@ def run_audit(
         "bootstrap": 0,
     }
     if cohort_records is not None:
-        evaluation, arrays = _evaluation(cohort_records, model, cutoff, window)
+        settings = _settings(model, cohort_records, rules, prior, free_mean, evaluation)
+        if settings["folder"] is not None:
+            cutoff = settings["cutoff"] if cutoff is None else cutoff
+            window = settings["window"] if window is None else window
+        link = evaluation
+        evaluation, arrays = _evaluation(cohort_records, model, cutoff, window, settings)
+        facts["evaluation"] = {
+            "folder": None if link is None else str(link),
+            "rules": evaluation.rules.to_dict(),
+            "prior": evaluation.prior.to_dict(),
+            "programs_agreeing": None if link is None else verdict_agreement(
+                evaluation.programs, link
+            ),
+        }  # fmt: skip
         options = {"bootstrap": bootstrap, "seed": seed, "map_fn": map_fn, "progress": progress}
         program_tables, program_facts = _program_checks(model, data, evaluation, arrays, options)
         tables = _merge(tables, _cohort_calibration(evaluation, model, arrays))

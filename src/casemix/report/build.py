@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from casemix._io import atomic_write_text
+from casemix.audit.agreement import check_audit_folder
 from casemix.errors import InputError
 from casemix.report.folder import EvaluationFolder, read_evaluation_folder
 from casemix.report.page import render_page
@@ -109,6 +110,7 @@ def render_report(
         model_section(data, options),
     ]
     if audit_folder is not None:
+        check_audit_folder(audit_folder, data.run)
         sections.append(audit_section(audit_folder))
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
