@@ -101,14 +101,15 @@ def dispersion_findings(summary: pd.DataFrame | None) -> list[str]:
     if row.p_value < THRESHOLDS["overdispersion_p_value"]:
         return [
             "after the most extreme programs are winsorised, programs still vary more than "
-            f"chance allows (phi = {row.phi:.2f}, {_p(row.p_value)}; "
+            f"chance allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation; "
             f"between-program SD of O/E tau = {np.sqrt(row.tau2):.2f}): consider funnel limits "
             "adjusted for overdispersion"
         ]
     return [
         "after the most extreme programs are winsorised, the rest vary no more than chance "
-        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)}); outlying programs are judged by "
-        "their own verdicts"
+        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation); outlying programs "
+        "are judged by their own verdicts; with few programs the test has little power "
+        "(docs/dispersion.md)"
     ]
 
 

@@ -207,6 +207,7 @@ def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
                 "statistic": result.statistic,
                 "df": result.df,
                 "p_value": result.p_value,
+                "simulations": result.simulations,
                 "tau2": result.tau2,
                 "z_low": result.limits[0],
                 "z_high": result.limits[1],
