@@ -15,6 +15,7 @@ from lifelines.datasets import load_leukemia, load_lung
 from lifelines.utils import datetimes_to_durations
 
 from casemix import Records, build_cohort, read_records
+from casemix.data.cohort import DAY_ZERO_TIME
 from casemix.data.spec import spec_from_dict
 from casemix.errors import InputError, SpecError
 
@@ -37,7 +38,8 @@ COLUMNS = ["recipient_id", "program", "transplant_date", "last_seen_date", "graf
 # differences (e.g. date(2025, 6, 30) - date(2025, 3, 1) = 121 days).
 CASES = [
     # id, program, transplant, last seen, graft loss, death, graft-failure (time, event), why
-    ("C01", "LV01", "2023-01-01", "2023-01-01", "2023-01-01", "", (0, 1)),  # failure on day 0
+    # day 0 is analysis time 0.5 (DAY_ZERO_TIME, the documented convention)
+    ("C01", "LV01", "2023-01-01", "2023-01-01", "2023-01-01", "", (0.5, 1)),  # failure on day 0
     ("C02", "LV01", "2023-01-01", "2024-06-01", "", "", (365, 0)),  # censored at the horizon
     ("C03", "LV01", "2023-01-01", "2024-06-01", "2024-01-01", "", (365, 1)),  # on the horizon day
     ("C04", "LV01", "2023-01-01", "2024-06-01", "2024-01-02", "", (365, 0)),  # one day after it
@@ -47,7 +49,7 @@ CASES = [
     ("C08", "LV02", "2023-01-01", "2023-03-01", "", "", (59, 0)),  # last seen early
     ("C09", "LV02", "2023-06-01", "2023-07-01", "", "2023-09-01", (92, 1)),  # after last seen
     ("C10", "LV02", "2023-01-01", "2024-06-01", "2023-02-01", "2023-12-01", (31, 1)),
-    ("C11", "LV02", "2025-06-30", "2025-06-30", "", "", (0, 0)),  # transplanted on the cut-off
+    ("C11", "LV02", "2025-06-30", "2025-06-30", "", "", (0.5, 0)),  # transplanted on the cut-off
 ]
 
 
@@ -72,7 +74,7 @@ def test_hand_worked_follow_up(records: Records) -> None:
     # C10 for death: death 2023-12-01 = day 334 (date(2023, 12, 1) - date(2023, 1, 1)).
     death = build_cohort(records, "death", 365, "2025-06-30")
     assert death.frame.loc[9, ["time", "event"]].tolist() == [334, 1]
-    assert death.frame.loc[0, ["time", "event"]].tolist() == [0, 0]  # C01 alive, seen day 0
+    assert death.frame.loc[0, ["time", "event"]].tolist() == [0.5, 0]  # C01 alive, seen day 0
 
 
 def test_defaults_come_from_the_records_and_spec(records: Records) -> None:
@@ -236,6 +238,7 @@ def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: 
                                           fill_date=fill)
     assert len(cohort.exclusions) == (~inside).sum() > 0
     assert (cohort.frame["time"] < lung["time"][inside.to_numpy()]).any()  # the cut-off bites
+    t_ref = _day_zero(t_ref)
     np.testing.assert_array_equal(cohort.frame["time"], t_ref)
     np.testing.assert_array_equal(cohort.frame["event"], e_ref.astype(int))
     ours, ref = _km(cohort.frame["time"], cohort.frame["event"]), _km(t_ref, e_ref)
@@ -244,6 +247,13 @@ def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: 
 
 
 # --- properties of the follow-up arithmetic -----------------------------------------------
+
+
+def _day_zero(days):
+    """The documented day-0 convention applied to reference durations: 0 days -> 0.5."""
+    days = np.asarray(days, dtype=float)
+    return np.where(days == 0, DAY_ZERO_TIME, days)
+
 
 _BASE = pd.Timestamp("2020-01-01")
 
@@ -284,11 +294,12 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     c = cohort.frame
     assert cohort.n_read == len(c) + len(cohort.exclusions)
     limit = (cutoff - c["transplant_date"]).dt.days
-    assert (c["time"] >= 0).all() and (c["time"] <= horizon).all() and (c["time"] <= limit).all()
+    bound = np.fmax(np.minimum(limit, horizon), DAY_ZERO_TIME)
+    assert (c["time"] > 0).all() and (c["time"] <= bound).all()
     ev_days = (c["death_date"] - c["transplant_date"]).dt.days
     inside = ev_days <= np.minimum(limit, horizon)
     assert ((c["event"] == 1) == inside).all()  # event exactly when it falls inside follow-up
-    assert (c.loc[c["event"] == 1, "time"] == ev_days[c["event"] == 1]).all()
+    assert (c.loc[c["event"] == 1, "time"] == _day_zero(ev_days[c["event"] == 1])).all()
     fu = cohort.followup
     assert ((fu["completeness"].dropna() >= 0) & (fu["completeness"].dropna() <= 1)).all()
     assert (fu["lost_to_followup"] <= fu["recipients"]).all()
@@ -300,7 +311,7 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     if len(c):
         t_ref, e_ref = datetimes_to_durations(c["transplant_date"], c["death_date"],
                                               fill_date=fill)
-        np.testing.assert_array_equal(c["time"], t_ref)
+        np.testing.assert_array_equal(c["time"], _day_zero(t_ref))
         np.testing.assert_array_equal(c["event"], e_ref.astype(int))
     # Monotone in the cut-off: a later cut-off never shortens follow-up or removes an event.
     more = build_cohort(records, "death", horizon, cutoff + pd.Timedelta(days=later)).frame

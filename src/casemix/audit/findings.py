@@ -77,6 +77,13 @@ def calibration_findings(regression: pd.DataFrame, deciles: pd.DataFrame) -> lis
                 f"{slope.upper:.2f})"
             )
         large = part.set_index("term").loc["in_the_large"]
+        if large.get("events_without_risk", 0) > 0:
+            out.append(
+                f"in the {population} population {int(large.events_without_risk)} event(s) "
+                "happened before the reference population's first event (the model expects "
+                "none so early: E = 0); they count in O but cannot enter the calibration "
+                "regression"
+            )
         if population != "reference" and (large.lower > 1 or large.upper < 1):
             out.append(
                 f"overall, the {population} population has O/E = {large.estimate:.2f} (95% CI "

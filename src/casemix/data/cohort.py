@@ -9,7 +9,14 @@ For a recipient transplanted on day ``T`` (all dates are whole days):
 * ``event`` = 1 if ``D`` exists and ``D <= P`` (an event on the day of the transplant, on the
   horizon day or on the cut-off day counts), else 0;
 * ``time`` = ``D - T`` if ``event`` else ``min(L, P) - T``, in days (float); never negative,
-  never past the horizon or the cut-off.
+  never past the horizon or the cut-off;
+* **day 0**: a follow-up of 0 days (an event, or the end of follow-up, on the day of the
+  transplant) becomes ``DAY_ZERO_TIME`` = 0.5 days, for the reference population and the
+  evaluation cohort alike (both go through :func:`build_cohort`). A recipient who fails on
+  the day of the transplant was at risk for part of that day; half a day keeps these events
+  before every later one and after nothing, and keeps every time positive (so a log time
+  scale applies). A cohort day-0 event is expected with the reference's own day-0 hazard;
+  when the reference has no day-0 event its E is 0 (the audit reports such events).
 
 Per program, the follow-up completeness index (Clark, Altman & De Stavola, 2002) is
 ``sum(observed) / sum(potential)`` where observed = ``time`` and potential = ``D - T`` for an
@@ -32,9 +39,11 @@ import pandas as pd
 from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
 
-__all__ = ["Cohort", "build_cohort", "follow_up"]
+__all__ = ["DAY_ZERO_TIME", "Cohort", "build_cohort", "follow_up"]
 
 _DAY = pd.Timedelta(days=1)
+# analysis time (days) of a follow-up that ends on the day of the transplant
+DAY_ZERO_TIME = 0.5
 
 
 @dataclass(frozen=True)
@@ -44,8 +53,8 @@ class Cohort:
     Attributes
     ----------
     frame : pandas.DataFrame
-        The kept record columns plus ``time`` (float days) and ``event`` (int 0/1); index =
-        0-based row of the records file.
+        The kept record columns plus ``time`` (float days, a day-0 end at ``DAY_ZERO_TIME``)
+        and ``event`` (int 0/1); index = 0-based row of the records file.
     exclusions : pandas.DataFrame
         ``row``, ``recipient``, ``reason``, ``program``: the records' exclusions plus
         recipients outside the cut-off or the transplant-date window, sorted by row.
@@ -177,7 +186,7 @@ def build_cohort(
         stamp,
         horizon,
     )
-    out["time"] = fu["time"]
+    out["time"] = fu["time"].mask(fu["time"] == 0, DAY_ZERO_TIME)
     out["event"] = fu["event"]
     return Cohort(
         frame=out,
