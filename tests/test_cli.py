@@ -547,3 +547,10 @@ def test_help_of_every_command_shows_an_example_using_its_own_options(command):
     listing = result.output.split("\nOptions:\n", 1)[1]
     for option in options:  # so that an example never shows an option the command lacks
         assert re.search(rf"^\s+{option}\b", listing, re.M), (command, option)
+
+
+def test_report_states_the_outcome_definition(demo_dir):
+    run = json.loads((demo_dir / "run.json").read_text(encoding="utf-8"))
+    assert run["outcome_definition"].endswith("(a death counts as an event: all-cause)")
+    html = (demo_dir / "report.html").read_text(encoding="utf-8")
+    assert "Outcome: graft failure = the earliest of graft_loss_date" in html

@@ -318,3 +318,73 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     both = c.index
     assert (more.loc[both, "time"] >= c["time"]).all()
     assert (more.loc[both, "event"] >= c["event"]).all()
+
+
+# --- death: censoring at death and records dated after it ---------------------------------
+
+DEATH_SPEC = spec_from_dict({
+    **SPEC_DICT,
+    "columns": {**SPEC_DICT["columns"], "death": "death_date"},
+    "outcomes": {
+        **SPEC_DICT["outcomes"],
+        "graft_failure_death_censored": {"dates": ["graft_loss_date"],
+                                         "censor_at": ["death_date"]},
+    },
+})
+# Hand-worked, cut-off 2025-06-30, horizon 365; day counts are datetime.date differences
+# (date(2023, 6, 1) - date(2023, 1, 1) = 151, date(2023, 3, 1) - date(2023, 1, 1) = 59).
+# id, program, transplant, last seen, graft loss, death,
+# death-censored (time, event, ended), all-cause (time, event)
+DEATH_CASES = [
+    ("D01", "LV01", "2023-01-01", "2023-06-01", "", "2023-06-01", (151, 0, 1), (151, 1)),
+    ("D02", "LV01", "2023-01-01", "2023-06-01", "2023-03-01", "2023-06-01", (59, 1, 0), (59, 1)),
+    # a graft loss on the day of death counts: the event wins the tie
+    ("D03", "LV01", "2023-01-01", "2023-06-01", "2023-06-01", "2023-06-01", (151, 1, 0), (151, 1)),
+    # death after the horizon (day 365 = 2024-01-01) ends nothing inside it
+    ("D04", "LV02", "2023-01-01", "2024-03-01", "", "2024-03-01", (365, 0, 0), (365, 0)),
+    ("D05", "LV02", "2025-03-01", "2025-06-30", "", "", (121, 0, 0), (121, 0)),
+]
+AFTER_DEATH = [
+    # last seen 92 days after the death
+    ("D06", "LV02", "2023-01-01", "2023-09-01", "", "2023-06-01"),
+    # a graft loss dated after the death
+    ("D07", "LV02", "2023-01-01", "2023-06-01", "2023-08-01", "2023-06-01"),
+]
+
+
+def test_death_censored_outcome_ends_follow_up_at_death(tmp_path: Path) -> None:
+    records = read_records(_write(tmp_path / "d.csv", DEATH_CASES + AFTER_DEATH), DEATH_SPEC)
+    censored = build_cohort(records, "graft_failure_death_censored", 365, "2025-06-30")
+    got = censored.frame[["time", "event", "ended"]].to_numpy().tolist()
+    assert got == [list(c[6]) for c in DEATH_CASES]
+    # D01 died with a working graft: not lost to follow-up, its potential follow-up ends at death
+    assert censored.followup["lost_to_followup"].sum() == 0
+    all_cause = build_cohort(records, "graft_failure", 365, "2025-06-30")
+    assert all_cause.frame[["time", "event"]].to_numpy().tolist() == [
+        list(c[7]) for c in DEATH_CASES
+    ]
+    assert all_cause.frame["ended"].sum() == 0
+
+
+def test_records_dated_after_death_are_excluded(tmp_path: Path) -> None:
+    records = read_records(_write(tmp_path / "d.csv", DEATH_CASES + AFTER_DEATH), DEATH_SPEC)
+    for outcome in ("graft_failure", "death", "graft_failure_death_censored"):
+        cohort = build_cohort(records, outcome, 365, "2025-06-30")
+        assert "D06" not in set(cohort.frame["recipient_id"])
+        late = cohort.exclusions[cohort.exclusions["kind"] == "dated after death"]
+        assert late["recipient"].tolist() == ["D06", "D07"]
+        assert late["reason"].iloc[0] == (
+            "last_seen_date 2023-09-01 after the death on 2023-06-01; correct the dates in the file"
+        )
+        assert "graft_loss_date 2023-08-01" in late["reason"].iloc[1]
+    # without a death column the check cannot be made and nothing is excluded for it
+    plain = read_records(_write(tmp_path / "p.csv", DEATH_CASES + AFTER_DEATH), SPEC)
+    kept = build_cohort(plain, "graft_failure", 365, "2025-06-30")
+    assert "dated after death" not in set(kept.exclusions.get("kind", pd.Series(dtype=object)))
+
+
+def test_censor_at_must_not_repeat_an_event_date() -> None:
+    bad = {**SPEC_DICT, "outcomes": {"x": {"dates": ["death_date"], "censor_at": ["death_date"]}}}
+    with pytest.raises(SpecError, match=r"in both 'outcomes\.x\.dates' and '\S+censor_at'"):
+        spec_from_dict(bad)
+    assert spec_from_dict(DEATH_SPEC.to_dict()) == DEATH_SPEC

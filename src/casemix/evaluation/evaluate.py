@@ -251,6 +251,9 @@ def _run_facts(records, cohort, model, model_path, prior, rules) -> dict[str, An
     return {
         "casemix_version": casemix.__version__,
         "outcome": model.outcome,
+        "outcome_definition": model.spec.outcome(model.outcome).definition(
+            model.spec.columns.death
+        ),
         "horizon_days": int(model.horizon_days),
         "cutoff": _date_text(cohort.cutoff),
         "window": [_date_text(d) for d in cohort.window],

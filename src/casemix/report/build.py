@@ -120,7 +120,9 @@ def render_report(
         cautions=report_cautions(data, options),
         cautions_at=1,
         summary=f"{outcome.capitalize()} within {run['horizon_days']} days of transplant; "
-                f"data to {run['cutoff']}.",
+                f"data to {run['cutoff']}."
+                + (f" Outcome: {run['outcome_definition']}." if "outcome_definition" in run
+                   else ""),
         footer=f"Made with casemix {run.get('casemix_version', '(version not recorded)')}.",
     )
 
