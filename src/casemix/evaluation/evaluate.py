@@ -51,6 +51,8 @@ PROGRAM_COLUMNS = [
     "p_more_exact",
     "p_fewer_exact",
     "casemix_factor",
+    "competing_events",
+    "cumulative_incidence",
 ]
 
 CAUTIONS = (

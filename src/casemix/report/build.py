@@ -7,6 +7,7 @@ from pathlib import Path
 from casemix._io import atomic_write_text
 from casemix.audit.agreement import check_audit_folder
 from casemix.errors import InputError
+from casemix.report.competing import competing_section
 from casemix.report.folder import EvaluationFolder, read_evaluation_folder
 from casemix.report.page import render_page
 from casemix.report.sections import (
@@ -109,6 +110,9 @@ def render_report(
         data_quality_section(data, options),
         model_section(data, options),
     ]
+    competing = competing_section(data, options)
+    if competing is not None:
+        sections.insert(-1, competing)
     if audit_folder is not None:
         check_audit_folder(audit_folder, data.run)
         sections.append(audit_section(audit_folder))
