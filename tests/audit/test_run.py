@@ -48,9 +48,9 @@ def test_tables_and_findings(demo):
     audit = demo["audit"]
     expected = {
         "ph", "concordance", "calibration_risk", "calibration_regression",
-        "calibration_horizon", "crosscheck", "coefficients", "calibration_size",
+        "calibration_horizon", "crosscheck", "coefficients", "joint_tests", "calibration_size",
         "overdispersion", "dispersion_programs", "prior_sensitivity", "prior_verdicts",
-        "bootstrap", "bootstrap_coefficients", "influence", "fdr",
+        "bootstrap", "bootstrap_coefficients", "bootstrap_draws", "influence", "fdr",
     }  # fmt: skip
     assert set(audit.tables) == expected
     assert sorted(audit.tables["concordance"]["population"]) == ["cohort", "reference"]
@@ -129,3 +129,21 @@ def test_day_zero_events_follow_one_convention_in_both_populations(tmp_path):
     assert any("happened before the reference population's first event" in f
                for f in audit.findings)
     assert "log" in set(audit.tables["ph"]["transform"])  # every time is > 0
+
+
+def test_calibration_risk_groups_share_one_scale(demo):
+    # both populations' risk groups are on the log relative risk against the reference
+    # average: the reference's groups straddle 0 and the cohort's overlap them
+    table = demo["audit"].tables["calibration_risk"]
+    ref = table[table["population"] == "reference"]
+    coh = table[table["population"] == "cohort"]
+    assert ref["risk_low"].min() < 0 < ref["risk_high"].max()
+    assert coh["risk_low"].min() < ref["risk_high"].max()
+    assert coh["risk_high"].max() > ref["risk_low"].min()
+    # centred: the reference's mean relative risk is close to 1 on this scale (the average
+    # recipient; exp of the mean log risk is below the mean risk by Jensen's inequality)
+    model = demo["model"]
+    joint = demo["audit"].tables["joint_tests"].set_index("covariate")
+    spline = [g for g in dict.fromkeys(model.design.groups)
+              if list(model.design.groups).count(g) > 1]
+    assert spline and (joint.loc[spline, "columns"] > 1).all()

@@ -112,3 +112,10 @@ def test_errors():
         overdispersion(OBSERVED, EXPECTED, simulations=10)
     with pytest.raises(InputError, match="unknown adjustment 'both'"):
         adjusted_funnel_limits([1.0], overdispersion(OBSERVED, EXPECTED), method="both")
+
+
+def test_raw_p_value_is_the_test_without_winsorising():
+    # the raw-z p-value uses the same simulated data sets as the winsorised one
+    kept = overdispersion(OBSERVED, EXPECTED)
+    plain = overdispersion(OBSERVED, EXPECTED, winsor=0.0)
+    assert kept.p_value_raw == plain.p_value == plain.p_value_raw

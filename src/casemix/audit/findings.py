@@ -114,9 +114,9 @@ def dispersion_findings(summary: pd.DataFrame | None) -> list[str]:
         ]
     return [
         "after the most extreme programs are winsorised, the rest vary no more than chance "
-        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation); outlying programs "
-        "are judged by their own verdicts; with few programs the test has little power "
-        "(docs/dispersion.md)"
+        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation; with every program "
+        f"kept {_p(row.p_value_raw)}); outlying programs are judged by their own verdicts; "
+        "with few programs the test has little power (docs/dispersion.md)"
     ]
 
 

@@ -36,6 +36,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from casemix.audit.wald import wald_groups
 from casemix.data.design import natural_spline_basis
 from casemix.errors import InputError, plural
 from casemix.survival import kaplan_meier
@@ -297,15 +298,7 @@ def ph_test_groups(
     if ss <= 0:
         _statistics(g, ev.raw, cov)  # raises the message for a single transformed time
     a = (gc @ ev.raw) @ cov
-    labels = np.asarray(groups, dtype=object)
-    rows = {}
-    for name in dict.fromkeys(labels):
-        j = np.flatnonzero(labels == name)
-        stat = float(ev.rows.size * a[j] @ np.linalg.solve(cov[np.ix_(j, j)], a[j]) / ss)
-        rows[name] = (stat, j.size, float(stats.chi2.sf(stat, j.size)))
-    return pd.DataFrame.from_dict(
-        rows, orient="index", columns=["statistic", "df", "p_value"]
-    ).rename_axis("group")
+    return wald_groups(a, cov, groups, scale=ev.rows.size / ss)
 
 
 def beta_smooth(time, beta_t, *, knots: int = 4, level: float = 0.95, points: int = 100):

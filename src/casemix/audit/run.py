@@ -30,8 +30,9 @@ from casemix.audit.calibration import (
 from casemix.audit.crosscheck import crosscheck_lifelines, crosscheck_statsmodels
 from casemix.audit.findings import THRESHOLDS, all_findings
 from casemix.audit.influence import leave_one_program_out
-from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals
+from casemix.audit.ph import TRANSFORMS, ph_test, ph_test_groups, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
+from casemix.audit.wald import wald_groups
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, read_records
 from casemix.errors import InputError
@@ -57,10 +58,12 @@ class Audit:
     tables : dict of str to DataFrame
         Tidy tables by name (the CSV file names without ``.csv``): always ``ph``,
         ``concordance``, ``calibration_risk``, ``calibration_regression``,
-        ``calibration_horizon``, ``crosscheck``, ``coefficients``; with a cohort also
-        ``calibration_size``, ``overdispersion``, ``dispersion_programs``,
+        ``calibration_horizon``, ``crosscheck``, ``coefficients``, ``joint_tests``; with a
+        cohort also ``calibration_size``, ``overdispersion``, ``dispersion_programs``,
         ``prior_sensitivity``, ``prior_verdicts``, ``bootstrap``,
-        ``bootstrap_coefficients``, ``influence``, ``fdr``.
+        ``bootstrap_coefficients``, ``bootstrap_draws``, ``influence``, ``fdr``. Risk
+        groups (``calibration_risk``) are on one scale for both populations: the log
+        relative risk against the reference population's average recipient.
     schoenfeld : DataFrame
         Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot.
     findings : tuple of str
@@ -114,7 +117,8 @@ def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.D
     ph = pd.concat(
         [ph_test(fit, *args, t, strata=data.strata).assign(transform=t) for t in transforms]
     ).reset_index()
-    lp = fit.linear_predictor(data.X)
+    # one risk scale for both populations: log relative risk against the reference average
+    lp = np.log(fit.relative_risk(data.X))
     e = fit.expected_events(data.time, data.X, data.strata)
     c = concordance(data.time, data.event, lp)
     horizons = [h for h in HORIZONS if h < model.horizon_days] + [model.horizon_days]
@@ -136,6 +140,19 @@ def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.D
     tables["crosscheck"] = pd.concat(checks, ignore_index=True)
     tables["coefficients"] = pd.DataFrame(
         {"term": list(fit.names), "coef": fit.coef, "se": fit.se, "hr": np.exp(fit.coef)}
+    )
+    groups = model.design.groups
+    wald = wald_groups(fit.coef, fit.cov, groups)
+    ph_joint = ph_test_groups(fit, *args, groups, "rank", strata=data.strata)
+    tables["joint_tests"] = pd.DataFrame(
+        {
+            "covariate": wald.index,
+            "columns": wald["df"].to_numpy(),
+            "wald": wald["statistic"].to_numpy(),
+            "wald_p_value": wald["p_value"].to_numpy(),
+            "ph_statistic": ph_joint["statistic"].to_numpy(),
+            "ph_p_value": ph_joint["p_value"].to_numpy(),
+        }
     )
     return tables
 
@@ -198,6 +215,7 @@ def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
                 "statistic": result.statistic,
                 "df": result.df,
                 "p_value": result.p_value,
+                "p_value_raw": result.p_value_raw,
                 "simulations": result.simulations,
                 "tau2": result.tau2,
                 "z_low": result.limits[0],
@@ -260,6 +278,13 @@ def _program_checks(model, data, evaluation, arrays, options) -> tuple[dict, dic
         delta.drop(columns="expected"), on="program", validate="one_to_one"
     )
     tables["bootstrap_coefficients"] = boot.coefficients
+    tables["bootstrap_draws"] = pd.DataFrame(
+        {
+            "replicate": np.repeat(np.arange(1, boot.draws.shape[0] + 1), boot.draws.shape[1]),
+            "program": np.tile(np.asarray(arrays.programs, dtype=object), boot.draws.shape[0]),
+            "expected": boot.draws.ravel(),
+        }
+    )
     reference_program = data.cohort.frame[model.spec.columns.program].astype(str).to_numpy()
     tables["influence"] = leave_one_program_out(
         data, model.fit, reference_program, arrays, observed, map_fn=options["map_fn"]
