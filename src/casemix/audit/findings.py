@@ -112,11 +112,18 @@ def dispersion_findings(summary: pd.DataFrame | None) -> list[str]:
             f"between-program SD of O/E tau = {np.sqrt(row.tau2):.2f}): consider funnel limits "
             "adjusted for overdispersion"
         ]
+    if row.get("p_value_raw", 1.0) < THRESHOLDS["overdispersion_p_value"]:
+        return [
+            f"programs vary more than chance allows ({_p(row.p_value_raw)} by simulation, "
+            "every program kept), but not once the most extreme are winsorised "
+            f"(phi = {row.phi:.2f}, {_p(row.p_value)}): the spread comes from a few outlying "
+            "programs, which are judged by their own verdicts"
+        ]
     return [
-        "after the most extreme programs are winsorised, the rest vary no more than chance "
-        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation; with every program "
-        f"kept {_p(row.p_value_raw)}); outlying programs are judged by their own verdicts; "
-        "with few programs the test has little power (docs/dispersion.md)"
+        "programs vary no more than chance allows, with every program kept "
+        f"({_p(row.get('p_value_raw', row.p_value))}) or the most extreme winsorised "
+        f"(phi = {row.phi:.2f}, {_p(row.p_value)}; p-values by simulation); with few "
+        "programs the test has little power (docs/dispersion.md)"
     ]
 
 

@@ -213,7 +213,6 @@ def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
                 "programs": len(used),
                 "phi": result.phi,
                 "statistic": result.statistic,
-                "df": result.df,
                 "p_value": result.p_value,
                 "p_value_raw": result.p_value_raw,
                 "simulations": result.simulations,

@@ -29,8 +29,9 @@ CAUTIONS = (
 # table -> (heading, one sentence on how to read it)
 TABLES = {
     "ph": ("Tests per model term (Grambsch-Therneau)",
-           "Each term's scaled Schoenfeld residuals tested for a trend over four time scales; "
-           "a small p-value says its hazard ratio changes with time."),
+           "Each term's scaled Schoenfeld residuals tested for a trend against several "
+           "scales of time (identity, log, rank, 1 - KM after and before each drop); a "
+           "small p-value says its hazard ratio changes with time."),
     "joint_tests": ("Joint tests per covariate",
                     "A spline or categorical covariate tested as a whole: the Wald test of "
                     "all its coefficients being zero, and the proportional-hazards test of "
@@ -95,14 +96,17 @@ LABELS = {
     "horizon": "Follow-up (days)", "slope": "Slope", "slope_lower": "Slope lower 95%",
     "slope_upper": "Slope upper 95%", "size": "Size", "recipients_low": "Recipients from",
     "recipients_high": "Recipients to", "programs": "Programs", "phi": "phi",
-    "simulations": "Simulations", "tau2": "tau squared", "z_low": "z winsorised from",
+    "simulations": "Simulations", "p_value_raw": "p-value, every program kept",
+    "tau2": "tau squared", "z_low": "z winsorised from",
     "z_high": "z winsorised to", "program": "Program", "z": "z", "z_winsorised": "z winsorised",
     "hr_mean": "HR mean", "hr_lower": "HR lower", "hr_upper": "HR upper",
     "changes": "Verdict changes", "verdict": "Verdict", "coef": "Coefficient",
     "se": "Standard error", "se_bootstrap": "Bootstrap standard error",
     "expected_lower": "E lower (bootstrap)", "expected_upper": "E upper (bootstrap)",
     "hr_lower_boot": "HR lower, E uncertain", "hr_upper_boot": "HR upper, E uncertain",
-    "width_ratio": "Interval width ratio", "library": "Library", "quantity": "Quantity",
+    "width_ratio": "Interval width ratio", "expected_se": "E standard error (delta)",
+    "delta_lower": "E lower (delta)", "delta_upper": "E upper (delta)", "library": "Library",
+    "quantity": "Quantity",
     "max_abs_difference": "Largest absolute difference",
     "max_rel_difference": "Largest relative difference", "q_more": "q (more events)",
     "q_fewer": "q (fewer events)", "p_more": "p (more events)", "p_fewer": "p (fewer events)",
@@ -112,6 +116,9 @@ LABELS = {
 def _label(column: str) -> str:
     if column in LABELS:
         return LABELS[column]
+    for value, words in (("statistic_", "Statistic, "), ("p_value_", "p-value, ")):
+        if column.startswith(value):
+            return words + column[len(value):].replace("_", " ") + " time"
     for prefix, words in (("multiplicative_", "phi-widened "), ("additive_", "tau-widened ")):
         if column.startswith(prefix):
             rest = column[len(prefix):].replace("_998", " 99.8%").replace("_95", " 95%")
@@ -119,8 +126,21 @@ def _label(column: str) -> str:
     return column.replace("_", " ")
 
 
+def _ph_wide(table):
+    """One row per term, a statistic and a p-value column per time scale."""
+    wide = table.pivot(index="term", columns="transform", values=["statistic", "p_value"])
+    order = list(dict.fromkeys(table["transform"]))
+    columns = [(v, t) for t in order for v in ("statistic", "p_value")]
+    wide = wide[columns].reindex(list(dict.fromkeys(table["term"])))
+    wide.columns = [f"{v}_{t}" for v, t in columns]
+    wide.insert(0, "df", table.drop_duplicates("term").set_index("term")["df"])
+    return wide.reset_index()
+
+
 def _table(name: str, table) -> Markup:
     heading, text = TABLES.get(name, (name.replace("_", " ").capitalize(), ""))
+    if name == "ph":
+        table = _ph_wide(table)
     intro = Markup("<p>{}</p>").format(text) if text else Markup("")
     headers = {c: _label(str(c)) for c in table.columns}
     return Markup("<h3>{}</h3>{}{}").format(heading, intro, Markup(table_html(table,

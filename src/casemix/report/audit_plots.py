@@ -19,6 +19,7 @@ import math
 import numpy as np
 import pandas as pd
 from matplotlib.figure import Figure
+from matplotlib.ticker import NullFormatter
 
 from casemix.audit.ph import beta_smooth
 
@@ -79,7 +80,7 @@ def schoenfeld_figure(schoenfeld, coef, names, *, seed: int = 0) -> Figure:
         ax.set_title(name, fontsize=8)
         ax.tick_params(labelsize=7)
     fig.supxlabel("days since transplant", fontsize=8)
-    fig.supylabel("beta(t): smooth with 95% band; dashed = model coefficient", fontsize=8)
+    fig.supylabel("beta(t)", fontsize=8)
     return fig
 
 
@@ -134,6 +135,7 @@ def bootstrap_figure(draws: pd.DataFrame, expected: pd.Series) -> Figure:
     ax.boxplot(values, orientation="horizontal", widths=0.6, flierprops={"markersize": 2},
                medianprops={"color": _ORANGE})  # fmt: skip
     ax.set_yticks(range(1, len(programs) + 1), programs)
+    ax.invert_yaxis()
     ax.axvline(1.0, color=_GREY, linewidth=1, linestyle="--")
     ax.set_xlabel("bootstrap E / E (reference model refitted on resampled recipients)",
                   fontsize=8)  # fmt: skip
@@ -168,6 +170,11 @@ def prior_figure(sensitivity: pd.DataFrame) -> Figure:
     ax.set_yticks(range(len(programs)), programs)
     ax.invert_yaxis()
     ax.set_xscale("log")
+    low = float(sensitivity["hr_lower"].min())
+    high = float(sensitivity["hr_upper"].max())
+    ticks = [v for v in (0.1, 0.25, 0.5, 1.0, 2.0, 4.0, 8.0) if low / 1.5 <= v <= high * 1.5]
+    ax.set_xticks(ticks, [f"{v:g}" for v in ticks])
+    ax.xaxis.set_minor_formatter(NullFormatter())
     ax.set_xlabel("hazard ratio, posterior mean and credible interval", fontsize=8)
     ax.tick_params(labelsize=7)
     ax.legend(fontsize=7, frameon=False, ncol=min(len(priors), 4), loc="upper center",
