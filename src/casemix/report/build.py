@@ -7,8 +7,8 @@ from pathlib import Path
 from casemix._io import atomic_write_text
 from casemix.audit.agreement import check_audit_folder
 from casemix.errors import InputError
-from casemix.report.competing import competing_section
 from casemix.report.folder import EvaluationFolder, read_evaluation_folder
+from casemix.report.incidence import competing_section
 from casemix.report.page import render_page
 from casemix.report.sections import (
     ReportOptions,
