@@ -308,7 +308,7 @@ def test_fit_unknown_outcome_is_named(demo_dir, tmp_path):
     result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
                     "--outcome", "graft_survival", "--horizon", 365,
                     "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
-    assert_exit(result, 1, "'graft_survival'", "graft_failure, death")
+    assert_exit(result, 1, "'graft_survival'", "graft_failure, graft_failure_death_censored, death")
     assert not (tmp_path / "model.json").exists()
 
 

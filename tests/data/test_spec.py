@@ -48,12 +48,14 @@ def test_docs_example_reads_as_documented(tmp_path: Path) -> None:
     spec = load_spec(_docs_example(tmp_path))
     assert spec.path == tmp_path / "spec.toml"
     assert spec.columns.last_seen == "last_seen_date"
-    assert list(spec.outcomes) == ["graft_failure", "death"]
+    assert list(spec.outcomes) == ["graft_failure", "graft_failure_death_censored", "death"]
     assert spec.outcomes["graft_failure"].dates == (
         "graft_loss_date",
         "retransplant_date",
         "death_date",
     )
+    assert spec.outcomes["graft_failure_death_censored"].censor_at == ("death_date",)
+    assert spec.columns.death == "death_date"
     assert [c.name for c in spec.covariates] == [
         "recipient_age",
         "recipient_sex",
