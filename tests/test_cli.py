@@ -313,7 +313,7 @@ def test_fit_unknown_outcome_is_named(demo_dir, tmp_path):
     result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
                     "--outcome", "graft_survival", "--horizon", 365,
                     "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
-    assert_exit(result, 1, "'graft_survival'", "graft_failure, death")
+    assert_exit(result, 1, "'graft_survival'", "graft_failure, graft_failure_death_censored, death")
     assert not (tmp_path / "model.json").exists()
 
 
@@ -495,6 +495,30 @@ def test_audit_writes_its_folder(demo_dir, network, tmp_path):
     assert (facts["bootstrap"], facts["seed"], facts["cohort_recipients"]) == (20, 1, cohort)
 
 
+def test_audit_of_an_evaluation_with_user_rules_agrees_with_it(demo_dir, tmp_path):
+    rules = tmp_path / "rules.toml"
+    rules.write_text("[verdict]\nprobability = 0.95\nupper_margin = 1.2\n", encoding="utf-8")
+    results, audit = tmp_path / "results", tmp_path / "audit"
+    assert_exit(invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                       "--rules", rules, "--cutoff", COHORT_CUTOFF, "--from", "2022-01-01",
+                       "--no-report", "--out", results), 0)
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--evaluation", results,
+                    "--bootstrap", 2, "--out", audit)
+    assert_exit(result, 0, r"probability 0\.95, margins 1 and 1\.2", r"agree with that "
+                r"evaluation for all 16 programs")
+    facts = json.loads((audit / "audit.json").read_text(encoding="utf-8"))
+    theirs = pd.read_csv(results / "programs.csv").set_index("program")["verdict"]
+    ours = pd.read_csv(audit / "fdr.csv").set_index("program")["verdict"]
+    assert facts["evaluation"]["programs_agreeing"] == 16 and ours.sort_index().equals(
+        theirs.sort_index())
+    assert_exit(invoke("report", results, "--audit", audit), 0)
+    both = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                  "--cohort", demo_dir / "cohort.csv", "--evaluation", results,
+                  "--rules", rules, "--out", tmp_path / "again")
+    assert_exit(both, 1, "give either an evaluation folder or rules")
+
+
 def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
     result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",
@@ -608,3 +632,10 @@ def test_the_probe_sees_a_heavy_library_when_one_is_loaded():
     done = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
                           env=env, timeout=120, check=False)
     assert "pandas" in done.stdout, done.stderr
+
+
+def test_report_states_the_outcome_definition(demo_dir):
+    run = json.loads((demo_dir / "run.json").read_text(encoding="utf-8"))
+    assert run["outcome_definition"].endswith("(a death counts as an event: all-cause)")
+    html = (demo_dir / "report.html").read_text(encoding="utf-8")
+    assert "Outcome: graft failure = the earliest of graft_loss_date" in html

@@ -423,11 +423,28 @@ def audit(
     ] = None,
     window_from: FromOption = None,
     window_to: ToOption = None,
+    evaluation: Annotated[
+        Path | None,
+        typer.Option(
+            "--evaluation", exists=True, file_okay=False,
+            help="Evaluation folder of this cohort: its model, rules, prior and dates are used.",
+        ),
+    ] = None,
+    rules: Annotated[
+        Path | None,
+        typer.Option("--rules", exists=True, dir_okay=False, help="Verdict rules (TOML)."),
+    ] = None,
+    prior: Annotated[
+        str | None, typer.Option("--prior", help="eb (default), eb-free, or fixed:SHAPE,RATE.")
+    ] = None,
 ) -> None:
     """Run the statistician's checks of a reference model (and of an evaluation, with --cohort).
 
+    With --evaluation the audit evaluates the cohort exactly as that evaluation did and
+    checks that every verdict agrees; otherwise give the same --rules and --prior.
+
     Example: casemix audit reference.csv --model model.json --cohort cohort.csv
-    --cutoff 2025-06-30 --out audit
+    --evaluation results --out audit
     """
     from casemix.audit import run_audit
     from casemix.data.records import read_records
@@ -435,21 +452,23 @@ def audit(
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
+    chosen = None if prior is None else _prior(prior)
     with _guarded():
         reference = ReferenceModel.load(model)
         ref_records = read_records(reference_records, reference.spec, cutoff=reference.cutoff)
-        cohort_records = (
-            None if cohort is None else read_records(cohort, reference.spec, cutoff=cut)
-        )
         result = run_audit(
             ref_records,
             reference,
-            cohort_records,
+            cohort,
             bootstrap=bootstrap,
             seed=seed,
             progress=err.is_terminal,
             cutoff=cut,
             window=None if window == (None, None) else window,
+            rules=rules,
+            prior=None if chosen in (None, "free") else chosen,
+            free_mean=chosen == "free",
+            evaluation=evaluation,
         )
         result.save(out_dir)
     for finding in result.findings:

@@ -131,9 +131,23 @@ def test_size_thirds_are_qcut_thirds_with_exact_edges(n):
         assert list(table["units"]) == [6, 5, 5]
 
 
+def test_events_with_no_expected_risk_are_counted_not_fatal():
+    # a cohort failure earlier than any reference event (E = 0) cannot enter a log-E
+    # regression: it is left out and counted. REFERENCE LIBRARY statsmodels GLM (Poisson,
+    # offset log E) on the other recipients gives the same estimate.
+    sm = pytest.importorskip("statsmodels.api")
+    rng = np.random.default_rng(11)
+    e = rng.uniform(0.05, 0.6, 300)
+    o = rng.poisson(e).clip(max=1)
+    lp = np.log(e) + rng.normal(0, 0.1, 300)
+    table = calibration_regression(np.r_[1, o], np.r_[0.0, e], np.r_[0.0, lp])
+    assert table["events_without_risk"].tolist() == [1, 1]
+    assert table["recipients"].iloc[0] == 300
+    glm = sm.GLM(o, np.ones((300, 1)), family=sm.families.Poisson(), offset=np.log(e)).fit()
+    assert table.loc["in_the_large", "estimate"] == pytest.approx(np.exp(glm.params[0]), rel=1e-9)
+
+
 def test_errors():
-    with pytest.raises(InputError, match="1 recipient had an event with E = 0"):
-        calibration_regression([1, 0, 1], [0.0, 0.5, 0.7], [0.1, 0.2, 0.3])
     with pytest.raises(InputError, match="groups must be between 2"):
         calibration_by_risk([1, 0], [0.5, 0.5], [0.1, 0.2], groups=5)
     with pytest.raises(InputError, match=r"lacks column\(s\) \['expected'\]"):

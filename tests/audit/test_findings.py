@@ -25,7 +25,7 @@ def test_ph_findings_name_the_covariates(rossi, rossi_fit):
 
 
 def test_dispersion_and_crosscheck_wording():
-    # invented 8-unit table of test_dispersion.py: n phi = 32.08 on 7 df, p = 3.9e-05
+    # invented 8-unit table of test_dispersion.py: n phi = 32.08, simulated p < 0.005
     result = overdispersion([2, 9, 15, 1, 22, 4, 30, 0], [5.1, 4.2, 8.3, 3.7, 12.5, 6.0, 18.2, 2.4])
     summary = pd.DataFrame([{"phi": result.phi, "p_value": result.p_value, "tau2": result.tau2}])
     (sentence,) = dispersion_findings(summary)

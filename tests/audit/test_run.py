@@ -8,9 +8,11 @@ import json
 import warnings
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from casemix.audit import run_audit
+from casemix.data.cohort import DAY_ZERO_TIME, build_cohort
 from casemix.data.records import read_records
 from casemix.data.spec import load_spec
 from casemix.demo import (
@@ -47,9 +49,9 @@ def test_tables_and_findings(demo):
     audit = demo["audit"]
     expected = {
         "ph", "concordance", "calibration_risk", "calibration_regression",
-        "calibration_horizon", "crosscheck", "coefficients", "calibration_size",
+        "calibration_horizon", "crosscheck", "coefficients", "joint_tests", "calibration_size",
         "overdispersion", "dispersion_programs", "prior_sensitivity", "prior_verdicts",
-        "bootstrap", "bootstrap_coefficients", "influence", "fdr",
+        "bootstrap", "bootstrap_coefficients", "bootstrap_draws", "influence", "fdr",
     }  # fmt: skip
     assert set(audit.tables) == expected
     assert sorted(audit.tables["concordance"]["population"]) == ["cohort", "reference"]
@@ -101,3 +103,51 @@ def test_without_cohort_only_model_checks(demo):
 def test_refuses_records_that_are_not_the_fitting_data(demo):
     with pytest.raises(InputError, match="are not the data the model was fitted on"):
         run_audit(demo["cohort"], demo["model"])
+
+
+def test_day_zero_events_follow_one_convention_in_both_populations(tmp_path):
+    # invented demo network: the reference's day-0 failures are removed, the cohort keeps its
+    # own (casemix.demo plants a few). Both populations put day 0 at DAY_ZERO_TIME; the cohort's
+    # day-0 failures are expected with the reference's day-0 hazard, here none (E = 0).
+    network = generate()
+    dates = ["graft_loss_date", "retransplant_date", "death_date"]
+    ref = network.reference.iloc[::3]
+    same_day = (ref[dates].apply(pd.to_datetime).sub(pd.to_datetime(ref["transplant_date"]),
+                                                     axis=0) == pd.Timedelta(0)).any(axis=1)
+    ref[~same_day].to_csv(tmp_path / "reference.csv", index=False)
+    network.cohort.to_csv(tmp_path / "cohort.csv", index=False)
+    (tmp_path / "spec.toml").write_text(network.spec_text, encoding="utf-8")
+    spec = load_spec(tmp_path / "spec.toml")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        reference = read_records(tmp_path / "reference.csv", spec, cutoff=REFERENCE_CUTOFF)
+        cohort = read_records(tmp_path / "cohort.csv", spec, cutoff=COHORT_CUTOFF)
+        model = fit_reference(reference, spec, cutoff=REFERENCE_CUTOFF, window=REFERENCE_WINDOW)
+        audit = run_audit(reference, model, cohort, bootstrap=2, seed=1, map_fn=map)
+    built = build_cohort(cohort, "graft_failure", 365, COHORT_CUTOFF)
+    day0 = built.frame[(built.frame["event"] == 1) & (built.frame["time"] < 1)]
+    assert len(day0) > 0 and (day0["time"] == DAY_ZERO_TIME).all()
+    assert model.fit.baselines[0].times[0] >= 1  # no reference event before day 1
+    regression = audit.tables["calibration_regression"].set_index(["population", "term"])
+    assert regression.loc[("cohort", "in_the_large"), "events_without_risk"] == len(day0)
+    assert any("happened before the reference population's first event" in f
+               for f in audit.findings)
+    assert "log" in set(audit.tables["ph"]["transform"])  # every time is > 0
+
+
+def test_calibration_risk_groups_share_one_scale(demo):
+    # both populations' risk groups are on the log relative risk against the reference
+    # average: the reference's groups straddle 0 and the cohort's overlap them
+    table = demo["audit"].tables["calibration_risk"]
+    ref = table[table["population"] == "reference"]
+    coh = table[table["population"] == "cohort"]
+    assert ref["risk_low"].min() < 0 < ref["risk_high"].max()
+    assert coh["risk_low"].min() < ref["risk_high"].max()
+    assert coh["risk_high"].max() > ref["risk_low"].min()
+    # centred: the reference's mean relative risk is close to 1 on this scale (the average
+    # recipient; exp of the mean log risk is below the mean risk by Jensen's inequality)
+    model = demo["model"]
+    joint = demo["audit"].tables["joint_tests"].set_index("covariate")
+    spline = [g for g in dict.fromkeys(model.design.groups)
+              if list(model.design.groups).count(g) > 1]
+    assert spline and (joint.loc[spline, "columns"] > 1).all()

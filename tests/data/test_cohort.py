@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 from oracles import lifelines
 
 from casemix import Records, build_cohort, read_records
+from casemix.data.cohort import DAY_ZERO_TIME
 from casemix.data.spec import spec_from_dict
 from casemix.errors import InputError, SpecError
 
@@ -35,7 +36,8 @@ COLUMNS = ["recipient_id", "program", "transplant_date", "last_seen_date", "graf
 # differences (e.g. date(2025, 6, 30) - date(2025, 3, 1) = 121 days).
 CASES = [
     # id, program, transplant, last seen, graft loss, death, graft-failure (time, event), why
-    ("C01", "LV01", "2023-01-01", "2023-01-01", "2023-01-01", "", (0, 1)),  # failure on day 0
+    # day 0 is analysis time 0.5 (DAY_ZERO_TIME, the documented convention)
+    ("C01", "LV01", "2023-01-01", "2023-01-01", "2023-01-01", "", (0.5, 1)),  # failure on day 0
     ("C02", "LV01", "2023-01-01", "2024-06-01", "", "", (365, 0)),  # censored at the horizon
     ("C03", "LV01", "2023-01-01", "2024-06-01", "2024-01-01", "", (365, 1)),  # on the horizon day
     ("C04", "LV01", "2023-01-01", "2024-06-01", "2024-01-02", "", (365, 0)),  # one day after it
@@ -45,7 +47,7 @@ CASES = [
     ("C08", "LV02", "2023-01-01", "2023-03-01", "", "", (59, 0)),  # last seen early
     ("C09", "LV02", "2023-06-01", "2023-07-01", "", "2023-09-01", (92, 1)),  # after last seen
     ("C10", "LV02", "2023-01-01", "2024-06-01", "2023-02-01", "2023-12-01", (31, 1)),
-    ("C11", "LV02", "2025-06-30", "2025-06-30", "", "", (0, 0)),  # transplanted on the cut-off
+    ("C11", "LV02", "2025-06-30", "2025-06-30", "", "", (0.5, 0)),  # transplanted on the cut-off
 ]
 
 
@@ -70,7 +72,7 @@ def test_hand_worked_follow_up(records: Records) -> None:
     # C10 for death: death 2023-12-01 = day 334 (date(2023, 12, 1) - date(2023, 1, 1)).
     death = build_cohort(records, "death", 365, "2025-06-30")
     assert death.frame.loc[9, ["time", "event"]].tolist() == [334, 1]
-    assert death.frame.loc[0, ["time", "event"]].tolist() == [0, 0]  # C01 alive, seen day 0
+    assert death.frame.loc[0, ["time", "event"]].tolist() == [0.5, 0]  # C01 alive, seen day 0
 
 
 def test_defaults_come_from_the_records_and_spec(records: Records) -> None:
@@ -235,6 +237,7 @@ def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: 
     t_ref, e_ref = to_durations(raw["transplant_date"], raw["death_date"], fill_date=fill)
     assert len(cohort.exclusions) == (~inside).sum() > 0
     assert (cohort.frame["time"] < lung["time"][inside.to_numpy()]).any()  # the cut-off bites
+    t_ref = _day_zero(t_ref)
     np.testing.assert_array_equal(cohort.frame["time"], t_ref)
     np.testing.assert_array_equal(cohort.frame["event"], e_ref.astype(int))
     ours, ref = _km(cohort.frame["time"], cohort.frame["event"]), _km(t_ref, e_ref)
@@ -243,6 +246,13 @@ def test_km_with_a_calendar_cut_off_equals_lifelines_on_the_same_data(tmp_path: 
 
 
 # --- properties of the follow-up arithmetic -----------------------------------------------
+
+
+def _day_zero(days):
+    """The documented day-0 convention applied to reference durations: 0 days -> 0.5."""
+    days = np.asarray(days, dtype=float)
+    return np.where(days == 0, DAY_ZERO_TIME, days)
+
 
 _BASE = pd.Timestamp("2020-01-01")
 
@@ -283,11 +293,12 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     c = cohort.frame
     assert cohort.n_read == len(c) + len(cohort.exclusions)
     limit = (cutoff - c["transplant_date"]).dt.days
-    assert (c["time"] >= 0).all() and (c["time"] <= horizon).all() and (c["time"] <= limit).all()
+    bound = np.fmax(np.minimum(limit, horizon), DAY_ZERO_TIME)
+    assert (c["time"] > 0).all() and (c["time"] <= bound).all()
     ev_days = (c["death_date"] - c["transplant_date"]).dt.days
     inside = ev_days <= np.minimum(limit, horizon)
     assert ((c["event"] == 1) == inside).all()  # event exactly when it falls inside follow-up
-    assert (c.loc[c["event"] == 1, "time"] == ev_days[c["event"] == 1]).all()
+    assert (c.loc[c["event"] == 1, "time"] == _day_zero(ev_days[c["event"] == 1])).all()
     fu = cohort.followup
     assert ((fu["completeness"].dropna() >= 0) & (fu["completeness"].dropna() <= 1)).all()
     assert (fu["lost_to_followup"] <= fu["recipients"]).all()
@@ -299,10 +310,80 @@ def test_follow_up_properties(frame: pd.DataFrame, cut: int, later: int, horizon
     if len(c):
         to_durations = lifelines("lifelines.utils").datetimes_to_durations
         t_ref, e_ref = to_durations(c["transplant_date"], c["death_date"], fill_date=fill)
-        np.testing.assert_array_equal(c["time"], t_ref)
+        np.testing.assert_array_equal(c["time"], _day_zero(t_ref))
         np.testing.assert_array_equal(c["event"], e_ref.astype(int))
     # Monotone in the cut-off: a later cut-off never shortens follow-up or removes an event.
     more = build_cohort(records, "death", horizon, cutoff + pd.Timedelta(days=later)).frame
     both = c.index
     assert (more.loc[both, "time"] >= c["time"]).all()
     assert (more.loc[both, "event"] >= c["event"]).all()
+
+
+# --- death: censoring at death and records dated after it ---------------------------------
+
+DEATH_SPEC = spec_from_dict({
+    **SPEC_DICT,
+    "columns": {**SPEC_DICT["columns"], "death": "death_date"},
+    "outcomes": {
+        **SPEC_DICT["outcomes"],
+        "graft_failure_death_censored": {"dates": ["graft_loss_date"],
+                                         "censor_at": ["death_date"]},
+    },
+})
+# Hand-worked, cut-off 2025-06-30, horizon 365; day counts are datetime.date differences
+# (date(2023, 6, 1) - date(2023, 1, 1) = 151, date(2023, 3, 1) - date(2023, 1, 1) = 59).
+# id, program, transplant, last seen, graft loss, death,
+# death-censored (time, event, ended), all-cause (time, event)
+DEATH_CASES = [
+    ("D01", "LV01", "2023-01-01", "2023-06-01", "", "2023-06-01", (151, 0, 1), (151, 1)),
+    ("D02", "LV01", "2023-01-01", "2023-06-01", "2023-03-01", "2023-06-01", (59, 1, 0), (59, 1)),
+    # a graft loss on the day of death counts: the event wins the tie
+    ("D03", "LV01", "2023-01-01", "2023-06-01", "2023-06-01", "2023-06-01", (151, 1, 0), (151, 1)),
+    # death after the horizon (day 365 = 2024-01-01) ends nothing inside it
+    ("D04", "LV02", "2023-01-01", "2024-03-01", "", "2024-03-01", (365, 0, 0), (365, 0)),
+    ("D05", "LV02", "2025-03-01", "2025-06-30", "", "", (121, 0, 0), (121, 0)),
+]
+AFTER_DEATH = [
+    # last seen 92 days after the death
+    ("D06", "LV02", "2023-01-01", "2023-09-01", "", "2023-06-01"),
+    # a graft loss dated after the death
+    ("D07", "LV02", "2023-01-01", "2023-06-01", "2023-08-01", "2023-06-01"),
+]
+
+
+def test_death_censored_outcome_ends_follow_up_at_death(tmp_path: Path) -> None:
+    records = read_records(_write(tmp_path / "d.csv", DEATH_CASES + AFTER_DEATH), DEATH_SPEC)
+    censored = build_cohort(records, "graft_failure_death_censored", 365, "2025-06-30")
+    got = censored.frame[["time", "event", "ended"]].to_numpy().tolist()
+    assert got == [list(c[6]) for c in DEATH_CASES]
+    # D01 died with a working graft: not lost to follow-up, its potential follow-up ends at death
+    assert censored.followup["lost_to_followup"].sum() == 0
+    all_cause = build_cohort(records, "graft_failure", 365, "2025-06-30")
+    assert all_cause.frame[["time", "event"]].to_numpy().tolist() == [
+        list(c[7]) for c in DEATH_CASES
+    ]
+    assert all_cause.frame["ended"].sum() == 0
+
+
+def test_records_dated_after_death_are_excluded(tmp_path: Path) -> None:
+    records = read_records(_write(tmp_path / "d.csv", DEATH_CASES + AFTER_DEATH), DEATH_SPEC)
+    for outcome in ("graft_failure", "death", "graft_failure_death_censored"):
+        cohort = build_cohort(records, outcome, 365, "2025-06-30")
+        assert "D06" not in set(cohort.frame["recipient_id"])
+        late = cohort.exclusions[cohort.exclusions["kind"] == "dated after death"]
+        assert late["recipient"].tolist() == ["D06", "D07"]
+        assert late["reason"].iloc[0] == (
+            "last_seen_date 2023-09-01 after the death on 2023-06-01; correct the dates in the file"
+        )
+        assert "graft_loss_date 2023-08-01" in late["reason"].iloc[1]
+    # without a death column the check cannot be made and nothing is excluded for it
+    plain = read_records(_write(tmp_path / "p.csv", DEATH_CASES + AFTER_DEATH), SPEC)
+    kept = build_cohort(plain, "graft_failure", 365, "2025-06-30")
+    assert "dated after death" not in set(kept.exclusions.get("kind", pd.Series(dtype=object)))
+
+
+def test_censor_at_must_not_repeat_an_event_date() -> None:
+    bad = {**SPEC_DICT, "outcomes": {"x": {"dates": ["death_date"], "censor_at": ["death_date"]}}}
+    with pytest.raises(SpecError, match=r"in both 'outcomes\.x\.dates' and '\S+censor_at'"):
+        spec_from_dict(bad)
+    assert spec_from_dict(DEATH_SPEC.to_dict()) == DEATH_SPEC

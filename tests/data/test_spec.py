@@ -48,12 +48,14 @@ def test_docs_example_reads_as_documented(tmp_path: Path) -> None:
     spec = load_spec(_docs_example(tmp_path))
     assert spec.path == tmp_path / "spec.toml"
     assert spec.columns.last_seen == "last_seen_date"
-    assert list(spec.outcomes) == ["graft_failure", "death"]
+    assert list(spec.outcomes) == ["graft_failure", "graft_failure_death_censored", "death"]
     assert spec.outcomes["graft_failure"].dates == (
         "graft_loss_date",
         "retransplant_date",
         "death_date",
     )
+    assert spec.outcomes["graft_failure_death_censored"].censor_at == ("death_date",)
+    assert spec.columns.death == "death_date"
     assert [c.name for c in spec.covariates] == [
         "recipient_age",
         "recipient_sex",
@@ -253,3 +255,19 @@ def test_unknown_outcome_and_covariate_suggest_the_closest() -> None:
         spec.outcome("deaths")
     with pytest.raises(SpecError, match=r"no covariate 'donorage' \(closest: 'donor_age'\)"):
         spec.covariate("donorage")
+
+
+def test_outcome_definitions_say_how_death_is_handled():
+    spec = load_spec(Path(__file__).parents[2] / "examples" / "lorran_valley" / "spec.toml")
+    death = spec.columns.death
+    assert death == "death_date"
+    assert spec.outcome("graft_failure").definition(death) == (
+        "graft failure = the earliest of graft_loss_date, retransplant_date, death_date "
+        "(a death counts as an event: all-cause)"
+    )
+    assert spec.outcome("graft_failure_death_censored").definition(death) == (
+        "graft failure death censored = the earliest of graft_loss_date, retransplant_date; "
+        "follow-up ends without an event at death_date (death-censored: a death ends "
+        "follow-up and competes with the event)"
+    )
+    assert spec.outcome("death").definition(death) == "death = the earliest of death_date"

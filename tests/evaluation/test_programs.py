@@ -23,7 +23,8 @@ from casemix.evaluation.programs import MAX_CURVE_POINTS, program_table, surviva
 TABLE_COLUMNS = [
     "program", "recipients", "observed", "expected", "oe_ratio", "oe_lower", "oe_upper",
     "observed_survival", "observed_survival_lower", "observed_survival_upper",
-    "expected_survival", "p_more_exact", "p_fewer_exact",
+    "expected_survival", "p_more_exact", "p_fewer_exact", "competing_events",
+    "cumulative_incidence",
 ]  # fmt: skip
 LATE_TX = "2021-03-01"  # 121 days before the cut-off: nobody of this program reaches day 364
 

@@ -106,12 +106,22 @@ def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html
     pd.DataFrame({"covariate": ["age", "global"], "statistic": [11.45, 17.66]}).to_csv(
         audit / "ph_test.csv", index=False)
     pd.DataFrame({"b": range(250)}).to_csv(audit / "bootstrap_expected.csv", index=False)
+    run = json.loads((small_folder / "run.json").read_text(encoding="utf-8"))
+    facts = {"model_fingerprint": run["model"]["fingerprint"],
+             "evaluation": {"rules": run["rules"], "prior": run["prior"]}}
+    (audit / "audit.json").write_text(json.dumps(facts), encoding="utf-8")
     html = render_report(small_folder, audit_folder=audit)
     parser = strict_html(html)
     assert parser.ids[-1] == "audit"
     assert "hazards for &lt;script&gt;" in html
     assert "<h3>Ph test</h3>" in html and "<h3>Bootstrap expected</h3>" in html
     assert "The first 200 of 250 rows; the rest are in bootstrap_expected.csv." in html
+    # an audit that made its verdicts with other rules is not shown beside this evaluation
+    other = {**facts, "evaluation": {**facts["evaluation"],
+                                     "rules": {**run["rules"], "upper_margin": 1.5}}}
+    (audit / "audit.json").write_text(json.dumps(other), encoding="utf-8")
+    with pytest.raises(InputError, match="did not make its verdicts with this evaluation's"):
+        render_report(small_folder, audit_folder=audit)
 
 
 def test_bad_arguments(evaluation_folder, tmp_path):

@@ -36,13 +36,48 @@ def test_invented_table_matches_hand_computation():
     np.testing.assert_allclose(result.z_winsorised, zw, rtol=1e-12)
     assert result.phi == pytest.approx(phi, rel=1e-12)
     assert result.tau2 == pytest.approx(tau2, rel=1e-12)
-    # hand computation printed to 6 digits: phi 4.009749, n phi 32.07800, tau^2 0.506139;
-    # p from scipy.stats.chi2 with 7 df: 3.9286e-05.
+    # hand computation printed to 6 digits: phi 4.009749, n phi 32.07800, tau^2 0.506139
     assert result.phi == pytest.approx(4.009749, abs=5e-7)
     assert result.tau2 == pytest.approx(0.506139, abs=5e-7)
     assert result.df == 7
-    assert result.p_value == pytest.approx(stats.chi2.sf(8 * phi, 7), rel=1e-12)
-    assert result.p_value == pytest.approx(3.9286e-05, abs=5e-9)
+    # far beyond Poisson chance: hardly any of the 2000 simulated null data sets reaches it
+    # (the chi-squared(7) tail, scipy.stats.chi2, is 3.9e-5)
+    assert result.p_value < 0.005 and result.simulations == 2000
+    k = result.p_value * 2001 - 1  # p = (1 + k) / (1 + B) with k null statistics >= T
+    assert k == pytest.approx(round(k), abs=1e-9)
+
+
+def _size(n_programs, datasets, p_of, seed):
+    rng = np.random.default_rng(seed)
+    e = rng.uniform(3, 60, n_programs)
+    hits = sum(p_of(rng.poisson(e), e, i) < 0.05 for i in range(datasets))
+    return hits / datasets
+
+
+def test_size_is_nominal_under_the_null():
+    # simulation with a known truth: no overdispersion, O ~ Poisson(E). 300 data sets: the
+    # Monte Carlo SE of a 5% rejection rate is sqrt(0.05 * 0.95 / 300) = 0.0126.
+    def simulated(o, e, i):
+        return overdispersion(o, e, simulations=400, seed=i).p_value
+
+    def chi2_n_minus_1(o, e, i):  # the earlier reference distribution, ignoring winsorising
+        return stats.chi2.sf(overdispersion(o, e, simulations=100).statistic, e.size - 1)
+
+    for n in (16, 30):
+        assert 0.05 - 0.03 < _size(n, 300, simulated, seed=n) < 0.05 + 0.035, n
+        # the chi-squared(n - 1) p-value is far too cautious (about 0.2-0.8% in
+        # docs/dispersion.md): the check above would fail with it
+        assert _size(n, 300, chi2_n_minus_1, seed=n) < 0.02, n
+
+
+def test_without_winsorising_large_counts_follow_chi_squared_n():
+    # COMMON PRACTICE: with E large the raw z-scores are nearly N(0, 1), so n phi ~ chi2(n)
+    # (REFERENCE LIBRARY scipy.stats.chi2); Monte Carlo SE of p with 4000 draws <= 0.008
+    rng = np.random.default_rng(3)
+    e = np.full(10, 2000.0)
+    for _ in range(3):
+        result = overdispersion(rng.poisson(e * 1.02), e, winsor=0.0, simulations=4000, seed=1)
+        assert result.p_value == pytest.approx(stats.chi2.sf(result.statistic, 10), abs=0.025)
 
 
 def test_poisson_data_without_spread_give_phi_near_one():
@@ -73,5 +108,14 @@ def test_errors():
         overdispersion([1, 2], [1.0, 2.0])
     with pytest.raises(InputError, match=r"positions \[1\] have E = 0"):
         overdispersion([1, 0, 3], [1.0, 0.0, 2.0])
+    with pytest.raises(InputError, match="simulations must be a whole number of at least 100"):
+        overdispersion(OBSERVED, EXPECTED, simulations=10)
     with pytest.raises(InputError, match="unknown adjustment 'both'"):
         adjusted_funnel_limits([1.0], overdispersion(OBSERVED, EXPECTED), method="both")
+
+
+def test_raw_p_value_is_the_test_without_winsorising():
+    # the raw-z p-value uses the same simulated data sets as the winsorised one
+    kept = overdispersion(OBSERVED, EXPECTED)
+    plain = overdispersion(OBSERVED, EXPECTED, winsor=0.0)
+    assert kept.p_value_raw == plain.p_value == plain.p_value_raw

@@ -157,7 +157,10 @@ def calibration_regression(event, expected, risk, *, level: float = 0.95) -> pd.
     """Calibration-in-the-large and calibration slope by Poisson regression.
 
     Recipients with E = 0 (follow-up ending before the first reference event time) are left
-    out: they carry no information, and ``recipients`` says how many were used.
+    out, and ``recipients`` says how many were used. An event among them (a cohort failure
+    earlier than any in the reference, e.g. on the day of the transplant when the reference
+    had none) cannot enter a regression on log E; such events are counted in
+    ``events_without_risk`` rather than hidden.
 
     Parameters
     ----------
@@ -169,20 +172,15 @@ def calibration_regression(event, expected, risk, *, level: float = 0.95) -> pd.
 
     Returns
     -------
-    DataFrame, shape (2, 7)
+    DataFrame, shape (2, 8)
         Index ``in_the_large`` (estimate = exp(a) = O/E) and ``slope`` (b); columns
-        ``estimate, lower, upper, null, p_value, recipients, observed`` where ``p_value`` tests
-        estimate = null (1 for both).
+        ``estimate, lower, upper, null, p_value, recipients, observed, events_without_risk``
+        where ``p_value`` tests estimate = null (1 for both).
     """
     o, e, lp = _recipient_arrays(event, expected, risk)
     level = check_level(level)
     used = e > 0
-    if o[~used].sum() > 0:
-        raise InputError(
-            f"{plural(int(o[~used].sum()), 'recipient')} had an event with E = 0 (an event "
-            "before the reference population's first event time); the model gives them no "
-            "risk at all: check their follow-up times"
-        )
+    without_risk = int(o[~used].sum())
     o, log_e, lp = o[used], np.log(e[used]), lp[used]
     if o.sum() == 0:
         raise InputError("no recipient has an event, so calibration cannot be assessed")
@@ -204,6 +202,7 @@ def calibration_regression(event, expected, risk, *, level: float = 0.95) -> pd.
             "p_value": [2 * stats.norm.sf(abs(v[3])) for v in rows.values()],
             "recipients": int(o.size),
             "observed": int(o.sum()),
+            "events_without_risk": without_risk,
         },
         index=pd.Index(list(rows), name="term"),
     )

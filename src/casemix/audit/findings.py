@@ -77,6 +77,13 @@ def calibration_findings(regression: pd.DataFrame, deciles: pd.DataFrame) -> lis
                 f"{slope.upper:.2f})"
             )
         large = part.set_index("term").loc["in_the_large"]
+        if large.get("events_without_risk", 0) > 0:
+            out.append(
+                f"in the {population} population {int(large.events_without_risk)} event(s) "
+                "happened before the reference population's first event (the model expects "
+                "none so early: E = 0); they count in O but cannot enter the calibration "
+                "regression"
+            )
         if population != "reference" and (large.lower > 1 or large.upper < 1):
             out.append(
                 f"overall, the {population} population has O/E = {large.estimate:.2f} (95% CI "
@@ -101,14 +108,22 @@ def dispersion_findings(summary: pd.DataFrame | None) -> list[str]:
     if row.p_value < THRESHOLDS["overdispersion_p_value"]:
         return [
             "after the most extreme programs are winsorised, programs still vary more than "
-            f"chance allows (phi = {row.phi:.2f}, {_p(row.p_value)}; "
+            f"chance allows (phi = {row.phi:.2f}, {_p(row.p_value)} by simulation; "
             f"between-program SD of O/E tau = {np.sqrt(row.tau2):.2f}): consider funnel limits "
             "adjusted for overdispersion"
         ]
+    if row.get("p_value_raw", 1.0) < THRESHOLDS["overdispersion_p_value"]:
+        return [
+            f"programs vary more than chance allows ({_p(row.p_value_raw)} by simulation, "
+            "every program kept), but not once the most extreme are winsorised "
+            f"(phi = {row.phi:.2f}, {_p(row.p_value)}): the spread comes from a few outlying "
+            "programs, which are judged by their own verdicts"
+        ]
     return [
-        "after the most extreme programs are winsorised, the rest vary no more than chance "
-        f"allows (phi = {row.phi:.2f}, {_p(row.p_value)}); outlying programs are judged by "
-        "their own verdicts"
+        "programs vary no more than chance allows, with every program kept "
+        f"({_p(row.get('p_value_raw', row.p_value))}) or the most extreme winsorised "
+        f"(phi = {row.phi:.2f}, {_p(row.p_value)}; p-values by simulation); with few "
+        "programs the test has little power (docs/dispersion.md)"
     ]
 
 
@@ -221,10 +236,29 @@ def fdr_findings(table: pd.DataFrame | None) -> list[str]:
     return out
 
 
+def agreement_findings(link: dict | None) -> list[str]:
+    """How the audit's verdicts were made, and whether they were checked against an evaluation."""
+    if link is None:
+        return []
+    rules, prior = link["rules"], link["prior"]
+    how = (
+        f"the audit's verdicts use probability {rules['probability']:g}, margins "
+        f"{rules['lower_margin']:g} and {rules['upper_margin']:g}, and the prior "
+        f"Gamma({prior['shape']:.4g}, {prior['rate']:.4g}) ({prior['method'].replace('_', ' ')})"
+    )
+    if link.get("folder") is None:
+        return [how + "; pass the evaluation folder to check them against an evaluation"]
+    return [
+        f"{how}, as the evaluation in {link['folder']} did (same model fingerprint): its "
+        f"verdicts agree with that evaluation for all {link['programs_agreeing']} programs"
+    ]
+
+
 def all_findings(audit_tables: dict, facts: dict) -> list[str]:
     """Every finding, in the order of the report."""
     t = audit_tables
     return [
+        *agreement_findings(facts.get("evaluation")),
         *ph_findings(t["ph"]),
         *concordance_findings(t["concordance"]),
         *calibration_findings(t["calibration_regression"], t["calibration_risk"]),

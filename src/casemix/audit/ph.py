@@ -16,7 +16,15 @@ Conventions
 * Scaled residuals are :math:`d\\,V r_k` without the coefficient added (add ``fit.coef`` to get
   the estimate of beta(t) that the plot shows).
 * The test statistic is the score-test approximation of Grambsch & Therneau (1994) used by
-  lifelines and by R's survival before version 3.0.
+  lifelines and by R's survival before version 3.0. A group of columns J (a spline's or a
+  categorical covariate's) is tested jointly with T_J = d a_J' (V_JJ)^-1 a_J / sum_k g~_k^2,
+  a = V sum_k g~_k r_k (|J| degrees of freedom); one
+  column gives the per-covariate statistic and all columns the global one.
+* The plotted smooth of beta(t) is an ordinary least-squares fit on a natural cubic spline of
+  time (knots at event-time quantiles) with a pointwise confidence band: not a robust
+  smoother, whose down-weighting follows the larger cluster of a binary covariate's
+  residuals away from the coefficient. Least squares with an intercept averages to the mean
+  of beta(t) at the events, which is the coefficient up to the score at the estimate.
 """
 
 from __future__ import annotations
@@ -28,11 +36,20 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from casemix.audit.wald import wald_groups
+from casemix.data.design import natural_spline_basis
 from casemix.errors import InputError, plural
 from casemix.survival import kaplan_meier
 from casemix.survival._validate import as_matrix, as_time_event, as_weights
 
-__all__ = ["TRANSFORMS", "ph_test", "schoenfeld_residuals", "time_transform"]
+__all__ = [
+    "TRANSFORMS",
+    "beta_smooth",
+    "ph_test",
+    "ph_test_groups",
+    "schoenfeld_residuals",
+    "time_transform",
+]
 
 # identity, log and rank follow lifelines; km is 1 - KM(t) after the drop at t (lifelines);
 # km_left is the left-continuous 1 - KM(t-), the transform of R's cox.zph before 3.0.
@@ -255,3 +272,79 @@ def ph_test(
         {"statistic": statistic, "df": df, "p_value": stats.chi2.sf(statistic, df)},
         index=pd.Index([*fit.names, "global"], name="term"),
     )
+
+
+def ph_test_groups(
+    fit: Any, time, event, X, groups, transform: str = "rank", *, strata=None, weights=None
+) -> pd.DataFrame:
+    """Joint proportional-hazards tests, one per group of design columns (module docstring).
+
+    Parameters
+    ----------
+    fit, time, event, X, transform, strata, weights
+        As in :func:`ph_test`.
+    groups : sequence of str, length p
+        The group (covariate) of each design column, e.g. ``Design.groups``.
+
+    Returns
+    -------
+    DataFrame
+        Index ``group`` (first-seen order); columns ``statistic``, ``df``, ``p_value``.
+    """
+    ev, cov = _events(fit, time, event, X, strata, weights)
+    g = time_transform(time, event, transform, weights=weights)
+    gc = g - g.mean()
+    ss = gc @ gc
+    if ss <= 0:
+        _statistics(g, ev.raw, cov)  # raises the message for a single transformed time
+    a = (gc @ ev.raw) @ cov
+    return wald_groups(a, cov, groups, scale=ev.rows.size / ss)
+
+
+def beta_smooth(time, beta_t, *, knots: int = 4, level: float = 0.95, points: int = 100):
+    """Least-squares natural-spline smooth of beta(t) with a pointwise confidence band.
+
+    Parameters
+    ----------
+    time : array_like of float, shape (d,)
+        Event times.
+    beta_t : array_like of float, shape (d,)
+        Scaled Schoenfeld residuals plus the coefficient.
+    knots : int, default 4
+        Knots at the event-time quantiles 0.05, 0.35, 0.65, 0.95 (fewer distinct times: a
+        straight line).
+    level : float, default 0.95
+        Coverage of the pointwise band (Student t quantile, residual variance of the fit).
+    points : int, default 100
+        Grid points from the first to the last event time.
+
+    Returns
+    -------
+    DataFrame
+        ``time``, ``fit``, ``lower``, ``upper`` on the grid; ``attrs["mean_fit"]`` is the
+        mean of the fitted values at the events (the mean of ``beta_t``).
+    """
+    t = np.asarray(time, dtype=float)
+    y = np.asarray(beta_t, dtype=float)
+    cuts = np.unique(np.quantile(t, np.linspace(0.05, 0.95, knots)))
+
+    def basis(x):
+        spline = natural_spline_basis(x, cuts) if cuts.size >= 3 else x[:, None]
+        return np.column_stack([np.ones(x.size), spline])
+
+    B = basis(t)
+    coef, *_ = np.linalg.lstsq(B, y, rcond=None)
+    fitted = B @ coef
+    dof = max(y.size - B.shape[1], 1)
+    sigma2 = float(((y - fitted) ** 2).sum() / dof)
+    inv = np.linalg.pinv(B.T @ B)
+    grid = np.linspace(t.min(), t.max(), points)
+    G = basis(grid)
+    se = np.sqrt(np.einsum("ij,jk,ik->i", G, inv, G) * sigma2)
+    z = stats.t.isf((1 - level) / 2, dof)
+    fit_grid = G @ coef
+    frame = pd.DataFrame(
+        {"time": grid, "fit": fit_grid, "lower": fit_grid - z * se, "upper": fit_grid + z * se}
+    )
+    frame.attrs["mean_fit"] = float(fitted.mean())
+    return frame

@@ -17,8 +17,9 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from casemix._io import atomic_write_text, write_csv, write_json
+from casemix._io import atomic_write_text, sha256_file, write_csv, write_json
 from casemix.audit._optional import available
+from casemix.audit.agreement import evaluation_settings, verdict_agreement
 from casemix.audit.bootstrap import ProgramArrays, bootstrap_expected, delta_expected
 from casemix.audit.calibration import (
     calibration_by_horizon,
@@ -29,11 +30,12 @@ from casemix.audit.calibration import (
 from casemix.audit.crosscheck import crosscheck_lifelines, crosscheck_statsmodels
 from casemix.audit.findings import THRESHOLDS, all_findings
 from casemix.audit.influence import leave_one_program_out
-from casemix.audit.ph import TRANSFORMS, ph_test, schoenfeld_residuals
+from casemix.audit.ph import TRANSFORMS, ph_test, ph_test_groups, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
+from casemix.audit.wald import wald_groups
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, read_records
-from casemix.errors import InputError, plural
+from casemix.errors import InputError
 from casemix.evaluation.evaluate import evaluate
 from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
 from casemix.report.audit_page import audit_html
@@ -56,10 +58,12 @@ class Audit:
     tables : dict of str to DataFrame
         Tidy tables by name (the CSV file names without ``.csv``): always ``ph``,
         ``concordance``, ``calibration_risk``, ``calibration_regression``,
-        ``calibration_horizon``, ``crosscheck``, ``coefficients``; with a cohort also
-        ``calibration_size``, ``overdispersion``, ``dispersion_programs``,
+        ``calibration_horizon``, ``crosscheck``, ``coefficients``, ``joint_tests``; with a
+        cohort also ``calibration_size``, ``overdispersion``, ``dispersion_programs``,
         ``prior_sensitivity``, ``prior_verdicts``, ``bootstrap``,
-        ``bootstrap_coefficients``, ``influence``, ``fdr``.
+        ``bootstrap_coefficients``, ``bootstrap_draws``, ``influence``, ``fdr``. Risk
+        groups (``calibration_risk``) are on one scale for both populations: the log
+        relative risk against the reference population's average recipient.
     schoenfeld : DataFrame
         Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot.
     findings : tuple of str
@@ -107,22 +111,14 @@ def _load(model, reference_records):
     return model, data
 
 
-def _transforms(data) -> tuple[list[str], list[str]]:
-    """The time transforms that apply, and a note for each one left out."""
-    at_zero = int(((data.time == 0) & (data.event == 1)).sum())
-    if not at_zero:
-        return list(TRANSFORMS), []
-    note = f"the log time transform was left out: {plural(at_zero, 'event')} happened at time 0"
-    return [t for t in TRANSFORMS if t != "log"], [note]
-
-
 def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.DataFrame]:
     fit = model.fit
     args = (data.time, data.event, data.X)
     ph = pd.concat(
         [ph_test(fit, *args, t, strata=data.strata).assign(transform=t) for t in transforms]
     ).reset_index()
-    lp = fit.linear_predictor(data.X)
+    # one risk scale for both populations: log relative risk against the reference average
+    lp = np.log(fit.relative_risk(data.X))
     e = fit.expected_events(data.time, data.X, data.strata)
     c = concordance(data.time, data.event, lp)
     horizons = [h for h in HORIZONS if h < model.horizon_days] + [model.horizon_days]
@@ -145,15 +141,31 @@ def _model_checks(model, data, reference_programs, transforms) -> dict[str, pd.D
     tables["coefficients"] = pd.DataFrame(
         {"term": list(fit.names), "coef": fit.coef, "se": fit.se, "hr": np.exp(fit.coef)}
     )
+    groups = model.design.groups
+    wald = wald_groups(fit.coef, fit.cov, groups)
+    ph_joint = ph_test_groups(fit, *args, groups, "rank", strata=data.strata)
+    tables["joint_tests"] = pd.DataFrame(
+        {
+            "covariate": wald.index,
+            "columns": wald["df"].to_numpy(),
+            "wald": wald["statistic"].to_numpy(),
+            "wald_p_value": wald["p_value"].to_numpy(),
+            "ph_statistic": ph_joint["statistic"].to_numpy(),
+            "ph_p_value": ph_joint["p_value"].to_numpy(),
+        }
+    )
     return tables
 
 
-def _evaluation(cohort_records, model, cutoff, window):
+def _evaluation(cohort_records, model, cutoff, window, settings):
     """The evaluation and the cohort's arrays, rows aligned with ``evaluation.recipients``."""
     records = cohort_records
     if not isinstance(records, Records):
         records = read_records(records, model.spec, cutoff=cutoff)
-    evaluation = evaluate(records, model, cutoff=cutoff, window=window)
+    evaluation = evaluate(
+        records, model, settings["rules"], settings["prior"], free_mean=settings["free_mean"],
+        cutoff=cutoff, window=window,
+    )  # fmt: skip
     cut = cutoff if cutoff is not None else records.cutoff
     _, cut, win = resolve_analysis(model.spec, model.horizon_days, cut, window)
     cohort = build_cohort(records, model.outcome, model.horizon_days, cut, win)
@@ -168,6 +180,28 @@ def _evaluation(cohort_records, model, cutoff, window):
     return evaluation, arrays
 
 
+def _settings(model, cohort_records, rules, prior, free_mean, folder) -> dict[str, Any]:
+    """Rules and prior for the audit's evaluation: given, or read from an evaluation folder."""
+    if folder is None:
+        return {"rules": rules, "prior": prior, "free_mean": free_mean, "folder": None}
+    if rules is not None or prior is not None or free_mean:
+        raise InputError(
+            "give either an evaluation folder or rules and a prior, not both: the audit takes "
+            "the evaluation's own rules and prior from its run.json"
+        )
+    found = evaluation_settings(folder, model.fingerprint)
+    source = getattr(cohort_records, "source", cohort_records)
+    if found.records_sha256 is not None and Path(source).is_file():
+        if sha256_file(source) != found.records_sha256:
+            raise InputError(
+                f"the cohort records {source} are not the file the evaluation in {folder} read "
+                "(their checksum differs); pass the same cohort records"
+            )
+    window = None if found.window == (None, None) else found.window
+    return {"rules": found.rules, "prior": found.prior, "free_mean": False, "folder": folder,
+            "cutoff": found.cutoff, "window": window}  # fmt: skip
+
+
 def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
     used = programs[programs["expected"] > 0]
     if len(used) < MIN_PROGRAMS:
@@ -179,8 +213,9 @@ def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
                 "programs": len(used),
                 "phi": result.phi,
                 "statistic": result.statistic,
-                "df": result.df,
                 "p_value": result.p_value,
+                "p_value_raw": result.p_value_raw,
+                "simulations": result.simulations,
                 "tau2": result.tau2,
                 "z_low": result.limits[0],
                 "z_high": result.limits[1],
@@ -242,6 +277,13 @@ def _program_checks(model, data, evaluation, arrays, options) -> tuple[dict, dic
         delta.drop(columns="expected"), on="program", validate="one_to_one"
     )
     tables["bootstrap_coefficients"] = boot.coefficients
+    tables["bootstrap_draws"] = pd.DataFrame(
+        {
+            "replicate": np.repeat(np.arange(1, boot.draws.shape[0] + 1), boot.draws.shape[1]),
+            "program": np.tile(np.asarray(arrays.programs, dtype=object), boot.draws.shape[0]),
+            "expected": boot.draws.ravel(),
+        }
+    )
     reference_program = data.cohort.frame[model.spec.columns.program].astype(str).to_numpy()
     tables["influence"] = leave_one_program_out(
         data, model.fit, reference_program, arrays, observed, map_fn=options["map_fn"]
@@ -271,6 +313,10 @@ def run_audit(
     progress: bool = False,
     cutoff=None,
     window=None,
+    rules=None,
+    prior=None,
+    free_mean: bool = False,
+    evaluation=None,
 ) -> Audit:
     """Run every check of the audit.
 
@@ -292,17 +338,29 @@ def run_audit(
         Show a progress bar on a terminal.
     cutoff, window : optional
         The cohort's cut-off and transplant-date window, as for :func:`casemix.evaluation.evaluate`.
+    rules, prior, free_mean : optional
+        Verdict rules and prior, as for :func:`casemix.evaluation.evaluate`; the audit's
+        verdicts are made with them.
+    evaluation : path, optional
+        An evaluation folder of this cohort: its model fingerprint must be the model's, its
+        rules, prior, cut-off and window are used (give neither ``rules`` nor ``prior``), and
+        the audit's verdicts are checked to be the evaluation's, program by program.
 
     Returns
     -------
     Audit
     """
+    if evaluation is not None and cohort_records is None:
+        raise InputError(
+            "an evaluation folder is checked against its cohort: give the cohort records too "
+            "(--cohort)"
+        )
     model, data = _load(model, reference_records)
     reference_programs = ProgramArrays.build(
         data.time, data.X, data.strata,
         data.cohort.frame[model.spec.columns.program].astype(str),
     )  # fmt: skip
-    transforms, notes = _transforms(data)
+    transforms = list(TRANSFORMS)  # every time is > 0 (the cohort's day-0 convention)
     tables = _model_checks(model, data, reference_programs, transforms)
     facts: dict[str, Any] = {
         "model_fingerprint": model.fingerprint,
@@ -312,14 +370,27 @@ def run_audit(
         "reference_events": int(data.event.sum()),
         "ties": model.fit.ties,
         "transforms": transforms,
-        "notes": notes,
+        "notes": [],
         "findings_transform": "rank",
         "thresholds": THRESHOLDS,
         "seed": int(seed),
         "bootstrap": 0,
     }
     if cohort_records is not None:
-        evaluation, arrays = _evaluation(cohort_records, model, cutoff, window)
+        settings = _settings(model, cohort_records, rules, prior, free_mean, evaluation)
+        if settings["folder"] is not None:
+            cutoff = settings["cutoff"] if cutoff is None else cutoff
+            window = settings["window"] if window is None else window
+        link = evaluation
+        evaluation, arrays = _evaluation(cohort_records, model, cutoff, window, settings)
+        facts["evaluation"] = {
+            "folder": None if link is None else str(link),
+            "rules": evaluation.rules.to_dict(),
+            "prior": evaluation.prior.to_dict(),
+            "programs_agreeing": None if link is None else verdict_agreement(
+                evaluation.programs, link
+            ),
+        }  # fmt: skip
         options = {"bootstrap": bootstrap, "seed": seed, "map_fn": map_fn, "progress": progress}
         program_tables, program_facts = _program_checks(model, data, evaluation, arrays, options)
         tables = _merge(tables, _cohort_calibration(evaluation, model, arrays))

@@ -3,13 +3,27 @@
 For a recipient transplanted on day ``T`` (all dates are whole days):
 
 * event date ``D`` = the earliest of the outcome's date columns (none if all are empty);
+* end date ``C`` = the earliest of the outcome's ``censor_at`` columns (for example death
+  in death-censored graft failure): follow-up stops there without an event, and an event
+  dated after ``C`` does not count (one dated on ``C`` does);
 * potential follow-up end ``P`` = min(cut-off, ``T`` + horizon);
 * last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later (records already
   do this and count it);
 * ``event`` = 1 if ``D`` exists and ``D <= P`` (an event on the day of the transplant, on the
   horizon day or on the cut-off day counts), else 0;
 * ``time`` = ``D - T`` if ``event`` else ``min(L, P) - T``, in days (float); never negative,
-  never past the horizon or the cut-off.
+  never past the horizon or the cut-off;
+* **day 0**: a follow-up of 0 days (an event, or the end of follow-up, on the day of the
+  transplant) becomes ``DAY_ZERO_TIME`` = 0.5 days, for the reference population and the
+  evaluation cohort alike (both go through :func:`build_cohort`). A recipient who fails on
+  the day of the transplant was at risk for part of that day; half a day keeps these events
+  before every later one and after nothing, and keeps every time positive (so a log time
+  scale applies). A cohort day-0 event is expected with the reference's own day-0 hazard;
+  when the reference has no day-0 event its E is 0 (the audit reports such events).
+
+Records dated after death are excluded (kind ``dated after death``) when the spec names a
+death column: a last-seen date or any outcome date later than the death date cannot be right,
+and keeping it would give risk time after death or count an event after it.
 
 Per program, the follow-up completeness index (Clark, Altman & De Stavola, 2002) is
 ``sum(observed) / sum(potential)`` where observed = ``time`` and potential = ``D - T`` for an
@@ -32,9 +46,11 @@ import pandas as pd
 from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
 
-__all__ = ["Cohort", "build_cohort", "follow_up"]
+__all__ = ["DAY_ZERO_TIME", "Cohort", "build_cohort", "follow_up"]
 
 _DAY = pd.Timedelta(days=1)
+# analysis time (days) of a follow-up that ends on the day of the transplant
+DAY_ZERO_TIME = 0.5
 
 
 @dataclass(frozen=True)
@@ -44,8 +60,9 @@ class Cohort:
     Attributes
     ----------
     frame : pandas.DataFrame
-        The kept record columns plus ``time`` (float days) and ``event`` (int 0/1); index =
-        0-based row of the records file.
+        The kept record columns plus ``time`` (float days, a day-0 end at ``DAY_ZERO_TIME``),
+        ``event`` (int 0/1) and ``ended`` (int 0/1: follow-up stopped at a ``censor_at``
+        date, the competing event); index = 0-based row of the records file.
     exclusions : pandas.DataFrame
         ``row``, ``recipient``, ``reason``, ``program``: the records' exclusions plus
         recipients outside the cut-off or the transplant-date window, sorted by row.
@@ -80,6 +97,7 @@ def follow_up(
     event_date: pd.Series,
     cutoff: pd.Timestamp,
     horizon_days: float,
+    end_date: pd.Series | None = None,
 ) -> pd.DataFrame:
     """Follow-up arithmetic for aligned datetime64 Series (rules in the module docstring).
 
@@ -91,23 +109,34 @@ def follow_up(
         ``NaT`` where there is no event.
     cutoff : pandas.Timestamp
     horizon_days : float
+    end_date : pandas.Series of datetime64, shape (n,), optional
+        The date that ends follow-up without an event (``NaT`` where there is none).
 
     Returns
     -------
     pandas.DataFrame
         Same index; float columns ``time``, ``potential``, ``last_seen_days`` (days from the
-        transplant to the extended last-seen date) and int column ``event``.
+        transplant to the extended last-seen date) and int columns ``event`` and ``ended``
+        (1 where follow-up stopped at ``end_date``, inside the horizon and the cut-off).
     """
     ev = ((event_date - transplant) / _DAY).to_numpy(dtype=float)
     seen = ((last_seen - transplant) / _DAY).to_numpy(dtype=float)
-    seen = np.fmax(seen, ev)  # follow-up reaches any recorded event (fmax ignores NaN)
     window = np.minimum(float(horizon_days), ((cutoff - transplant) / _DAY).to_numpy(float))
+    end = np.full(ev.shape, np.nan)
+    if end_date is not None:
+        end = ((end_date - transplant) / _DAY).to_numpy(dtype=float)
+        ev = np.where(end < ev, np.nan, ev)  # an event after the end does not count
+    seen = np.fmax(seen, ev)  # follow-up reaches any recorded event (fmax ignores NaN)
+    seen = np.fmin(seen, end)  # and stops at the end date (fmin ignores NaN)
+    window = np.fmin(window, end)
     event = ev <= window  # False where there is no event (NaN compares False)
+    ended = ~event & (end <= window)
     time = np.where(event, ev, np.minimum(seen, window))
     return pd.DataFrame(
         {
             "time": time,
             "event": event.astype(np.int64),
+            "ended": ended.astype(np.int64),
             "potential": np.where(event, ev, window),
             "last_seen_days": seen,
         },
@@ -156,19 +185,20 @@ def build_cohort(
         No horizon or cut-off, a cut-off after the records' cut-off, a bad window.
     """
     spec = records.spec
-    dates = spec.outcome(outcome).dates
+    chosen = spec.outcome(outcome)
+    dates = chosen.dates
     horizon = _horizon(horizon_days, spec.analysis.horizon_days)
     stamp = _cutoff(cutoff, records)
     start, end = _window(window)
     frame = records.frame
-    for name in ("time", "event"):
+    for name in ("time", "event", "ended"):
         if name in frame.columns:
             raise InputError(
                 f"records file '{records.source}' has a column '{name}', which the cohort "
                 "adds; rename that column in the file."
             )
     tx = frame[spec.columns.transplant_date]
-    reasons = _window_reasons(tx, stamp, start, end)
+    reasons = _after_death_reasons(frame, spec, _window_reasons(tx, stamp, start, end))
     out = frame.loc[reasons["reason"].isna()].copy()
     fu = follow_up(
         out[spec.columns.transplant_date],
@@ -176,9 +206,11 @@ def build_cohort(
         out[list(dates)].min(axis=1),
         stamp,
         horizon,
+        out[list(chosen.censor_at)].min(axis=1) if chosen.censor_at else None,
     )
-    out["time"] = fu["time"]
+    out["time"] = fu["time"].mask(fu["time"] == 0, DAY_ZERO_TIME)
     out["event"] = fu["event"]
+    out["ended"] = fu["ended"]
     return Cohort(
         frame=out,
         exclusions=_exclusions(records, reasons),
@@ -254,6 +286,27 @@ def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp, start: pd.Timestamp | N
         mask = mask & reasons["reason"].isna()
         reasons.loc[mask, "reason"] = ("transplanted " + day[mask] + text).to_numpy(dtype=object)
         reasons.loc[mask, "kind"] = kind
+    return reasons
+
+
+def _after_death_reasons(frame: pd.DataFrame, spec, reasons: pd.DataFrame) -> pd.DataFrame:
+    """Add a reason for records with a last-seen or outcome date after the death date."""
+    death_column = spec.columns.death
+    if death_column is None:
+        return reasons
+    death = frame[death_column]
+    later = [c for c in (spec.columns.last_seen, *spec.event_columns) if c != death_column]
+    text = pd.Series("", index=frame.index, dtype=object)
+    for column in later:
+        hit = (frame[column] > death).to_numpy()
+        text[hit] = text[hit] + f"{column} " + frame.loc[hit, column].dt.strftime("%Y-%m-%d") + ", "
+    mask = (text != "") & reasons["reason"].isna()
+    reasons = reasons.copy()
+    reasons.loc[mask, "reason"] = (
+        text[mask].str[:-2] + " after the death on "
+        + death[mask].dt.strftime("%Y-%m-%d") + "; correct the dates in the file"
+    ).to_numpy(dtype=object)
+    reasons.loc[mask, "kind"] = "dated after death"
     return reasons
 
 

@@ -107,21 +107,49 @@ class Columns:
     transplant_date : str
         Date of the transplant (start of follow-up).
     last_seen : str
-        Last date the recipient was known alive with a working graft.
+        Last date the recipient was known alive (a follow-up contact of any kind, or the
+        death date); see docs/spec.md for what it implies for each outcome.
+    death : str or None, default None
+        The date of death, when the file has one: records with a contact or an event after
+        it are excluded (``casemix.data.cohort``).
     """
 
     recipient: str
     program: str
     transplant_date: str
     last_seen: str
+    death: str | None = None
 
 
 @dataclass(frozen=True)
 class Outcome:
-    """An outcome: the event is the earliest of ``dates`` (names of date columns)."""
+    """An outcome: the event is the earliest of ``dates`` (names of date columns).
+
+    ``censor_at`` names dates that end follow-up without counting (for example the death
+    date in death-censored graft failure); an event dated on or before the earliest of them
+    still counts.
+    """
 
     name: str
     dates: tuple[str, ...]
+    censor_at: tuple[str, ...] = ()
+
+    def definition(self, death: str | None = None) -> str:
+        """The outcome in plain words, for reports.
+
+        Parameters
+        ----------
+        death : str, optional
+            The spec's death column, to say how death is handled.
+        """
+        text = f"{self.name.replace('_', ' ')} = the earliest of {', '.join(self.dates)}"
+        if self.censor_at:
+            text += f"; follow-up ends without an event at {', '.join(self.censor_at)}"
+        if death is not None and death in self.dates and len(self.dates) > 1:
+            text += " (a death counts as an event: all-cause)"
+        elif death is not None and death in self.censor_at:
+            text += " (death-censored: a death ends follow-up and competes with the event)"
+        return text
 
 
 @dataclass(frozen=True)
@@ -242,13 +270,16 @@ class Spec:
 
     @property
     def event_columns(self) -> tuple[str, ...]:
-        """Every date column used by any outcome, each once, in order of first use."""
-        return tuple(dict.fromkeys(d for o in self.outcomes.values() for d in o.dates))
+        """Every date column used by any outcome (events, then ends of follow-up), each once."""
+        dates = [d for o in self.outcomes.values() for d in (*o.dates, *o.censor_at)]
+        return tuple(dict.fromkeys(dates))
 
     @property
     def date_columns(self) -> tuple[str, ...]:
-        """Transplant date, last seen and the event date columns."""
-        return (self.columns.transplant_date, self.columns.last_seen, *self.event_columns)
+        """Transplant date, last seen, the outcome date columns and the death date, each once."""
+        death = (self.columns.death,) if self.columns.death else ()
+        cols = (self.columns.transplant_date, self.columns.last_seen, *self.event_columns, *death)
+        return tuple(dict.fromkeys(cols))
 
     @property
     def required_columns(self) -> tuple[str, ...]:
@@ -265,11 +296,13 @@ class Spec:
         """
         out: dict[str, Any] = {
             "columns": {k: getattr(self.columns, k) for k in _COLUMN_KEYS},
-            "outcomes": {n: {"dates": list(o.dates)} for n, o in self.outcomes.items()},
+            "outcomes": {n: _outcome_dict(o) for n, o in self.outcomes.items()},
             # A list, so that the order (the design's column order) survives JSON writers
             # that sort keys; spec_from_dict reads both this and the TOML table form.
             "covariates": [{"name": c.name, **_covariate_dict(c)} for c in self.covariates],
         }
+        if self.columns.death is not None:
+            out["columns"]["death"] = self.columns.death
         if self.strata is not None:
             out["strata"] = {"column": self.strata}
         analysis = {k: getattr(self.analysis, k) for k in _ANALYSIS_KEYS}
@@ -283,6 +316,14 @@ class Spec:
         if self.date_format is not None:
             out["records"] = {"date_format": self.date_format}
         return out
+
+
+def _outcome_dict(outcome: Outcome) -> dict[str, Any]:
+    """The keys of one outcome table (``censor_at`` only when it is used)."""
+    out: dict[str, Any] = {"dates": list(outcome.dates)}
+    if outcome.censor_at:
+        out["censor_at"] = list(outcome.censor_at)
+    return out
 
 
 def _covariate_dict(cov: Covariate) -> dict[str, Any]:
@@ -386,14 +427,18 @@ def _text(value: Any, key: str, where: str) -> str:
 
 
 def _columns(table: Mapping[str, Any], where: str) -> Columns:
-    _check_keys(table, _COLUMN_KEYS, "columns", where)
+    _check_keys(table, (*_COLUMN_KEYS, "death"), "columns", where)
     missing = [k for k in _COLUMN_KEYS if k not in table]
     if missing:
         raise SpecError(
             f"{where}: [columns] lacks {', '.join(missing)}; name the records column for "
             f"each of {', '.join(_COLUMN_KEYS)}."
         )
-    return Columns(**{k: _text(table[k], f"columns.{k}", where) for k in _COLUMN_KEYS})
+    death = table.get("death")
+    return Columns(
+        **{k: _text(table[k], f"columns.{k}", where) for k in _COLUMN_KEYS},
+        death=None if death is None else _text(death, "columns.death", where),
+    )
 
 
 def _outcomes(table: Mapping[str, Any], where: str) -> Mapping[str, Outcome]:
@@ -403,7 +448,7 @@ def _outcomes(table: Mapping[str, Any], where: str) -> Mapping[str, Outcome]:
     for name, body in table.items():
         key = f"outcomes.{name}"
         body = _table(body, key, where)
-        _check_keys(body, ("dates",), key, where)
+        _check_keys(body, ("dates", "censor_at"), key, where)
         dates = body.get("dates")
         if not isinstance(dates, (list, tuple)) or not dates:
             raise SpecError(
@@ -411,7 +456,20 @@ def _outcomes(table: Mapping[str, Any], where: str) -> Mapping[str, Outcome]:
                 f"for example dates = [\"death_date\"]."
             )
         names = tuple(_text(v, f"{key}.dates", where) for v in dates)
-        out[name] = Outcome(name=name, dates=tuple(dict.fromkeys(names)))
+        censor = body.get("censor_at", [])
+        if not isinstance(censor, (list, tuple)):
+            raise SpecError(
+                f"{where}: '{key}.censor_at' must be a list of date column names, for example "
+                f"censor_at = [\"death_date\"]."
+            )
+        ends = tuple(dict.fromkeys(_text(v, f"{key}.censor_at", where) for v in censor))
+        both = sorted(set(ends) & set(names))
+        if both:
+            raise SpecError(
+                f"{where}: {', '.join(both)} is in both '{key}.dates' and '{key}.censor_at'; "
+                "a date either counts as the event or ends follow-up without counting."
+            )
+        out[name] = Outcome(name=name, dates=tuple(dict.fromkeys(names)), censor_at=ends)
     return MappingProxyType(out)
 
 
@@ -568,6 +626,8 @@ def _check_roles(spec: Spec, where: str) -> None:
         uses.setdefault(getattr(spec.columns, role), []).append(f"columns.{role}")
     for column in spec.event_columns:
         uses.setdefault(column, []).append("an outcome date")
+    if spec.columns.death is not None and spec.columns.death not in spec.event_columns:
+        uses.setdefault(spec.columns.death, []).append("columns.death")
     for cov in spec.covariates:
         uses.setdefault(cov.column, []).append(f"covariates.{cov.name}")
     if spec.strata is not None:

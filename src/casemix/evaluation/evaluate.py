@@ -59,6 +59,8 @@ PROGRAM_COLUMNS = [
     "detectable_hr_excess",
     "detectable_hr_favorable",
     "null_flag_probability",
+    "competing_events",
+    "cumulative_incidence",
 ]
 
 NETWORK_TEST_LEVEL = 0.05
@@ -316,6 +318,9 @@ def _run_facts(records, cohort, model, model_path, prior, rules) -> dict[str, An
     return {
         "casemix_version": casemix.__version__,
         "outcome": model.outcome,
+        "outcome_definition": model.spec.outcome(model.outcome).definition(
+            model.spec.columns.death
+        ),
         "horizon_days": int(model.horizon_days),
         "cutoff": _date_text(cohort.cutoff),
         "window": [_date_text(d) for d in cohort.window],

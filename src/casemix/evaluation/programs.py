@@ -3,6 +3,9 @@
 Observed survival at the horizon is a Kaplan-Meier estimate (recent recipients have partial
 follow-up, so a plain fraction would be biased); expected survival is the average of the
 recipients' predicted survival at the horizon under the reference model (direct adjustment).
+For an outcome with ``censor_at`` dates (death-censored graft failure) the ends at those dates
+compete with the event: the table adds their count and the Aalen-Johansen cumulative
+incidence of the event, which is smaller than 1 - Kaplan-Meier when deaths intervene.
 """
 
 from __future__ import annotations
@@ -13,7 +16,7 @@ import pandas as pd
 from casemix.evaluation.expected import ExpectedEvents
 from casemix.model.reference import ReferenceModel
 from casemix.stats.poisson import exact_p_values, oe_interval
-from casemix.survival import kaplan_meier
+from casemix.survival import cumulative_incidence, kaplan_meier
 
 MAX_CURVE_POINTS = 400
 
@@ -33,13 +36,18 @@ def program_table(expected: ExpectedEvents, level: float = 0.95) -> pd.DataFrame
         Sorted by program: ``program``, ``recipients``, ``observed``, ``expected``,
         ``oe_ratio``, ``oe_lower``, ``oe_upper``, ``observed_survival``,
         ``observed_survival_lower``, ``observed_survival_upper``, ``expected_survival``,
-        ``p_more_exact`` (P(Y >= O | E)), ``p_fewer_exact`` (P(Y <= O | E)). Observed survival
-        is NaN when no recipient of the program was followed to the horizon.
+        ``p_more_exact`` (P(Y >= O | E)), ``p_fewer_exact`` (P(Y <= O | E)),
+        ``competing_events`` (ends at a ``censor_at`` date) and ``cumulative_incidence``
+        (Aalen-Johansen, equal to 1 - observed survival without competing events). Observed
+        survival and incidence are NaN when no recipient was followed to the horizon.
     """
     horizon = float(expected.cohort.horizon_days)
+    ended = expected.cohort.frame["ended"].to_numpy(dtype=int)
     rows = []
     for program, group in expected.frame.groupby("program", sort=True):
         km = kaplan_meier(group["time"], group["event"], level=level)
+        competing = ended[group.index.to_numpy()]
+        incidence = cumulative_incidence(group["time"], group["event"] + 2 * competing)
         rows.append(
             {
                 "program": program,
@@ -50,6 +58,8 @@ def program_table(expected: ExpectedEvents, level: float = 0.95) -> pd.DataFrame
                 "observed_survival_lower": float(km.lower_at(horizon)[0]),
                 "observed_survival_upper": float(km.upper_at(horizon)[0]),
                 "expected_survival": float(np.exp(-group["expected_at_horizon"]).mean()),
+                "competing_events": int(competing.sum()),
+                "cumulative_incidence": float(incidence.at(horizon)[0]),
             }
         )
     table = pd.DataFrame(rows)
@@ -75,6 +85,8 @@ def program_table(expected: ExpectedEvents, level: float = 0.95) -> pd.DataFrame
             "expected_survival",
             "p_more_exact",
             "p_fewer_exact",
+            "competing_events",
+            "cumulative_incidence",
         ]
     ]
 

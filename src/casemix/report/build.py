@@ -5,8 +5,10 @@ from __future__ import annotations
 from pathlib import Path
 
 from casemix._io import atomic_write_text
+from casemix.audit.agreement import check_audit_folder
 from casemix.errors import InputError
 from casemix.report.folder import EvaluationFolder, read_evaluation_folder
+from casemix.report.incidence import competing_section
 from casemix.report.page import render_page
 from casemix.report.sections import (
     ReportOptions,
@@ -108,7 +110,11 @@ def render_report(
         data_quality_section(data, options),
         model_section(data, options),
     ]
+    competing = competing_section(data, options)
+    if competing is not None:
+        sections.insert(-1, competing)
     if audit_folder is not None:
+        check_audit_folder(audit_folder, data.run)
         sections.append(audit_section(audit_folder))
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
@@ -118,7 +124,9 @@ def render_report(
         cautions=report_cautions(data, options),
         cautions_at=1,
         summary=f"{outcome.capitalize()} within {run['horizon_days']} days of transplant; "
-                f"data to {run['cutoff']}.",
+                f"data to {run['cutoff']}."
+                + (f" Outcome: {run['outcome_definition']}." if "outcome_definition" in run
+                   else ""),
         footer=f"Made with casemix {run.get('casemix_version', '(version not recorded)')}.",
     )
 

@@ -1,0 +1,174 @@
+"""The audit evaluates exactly as the evaluation did: its settings, and the check of verdicts.
+
+An evaluation folder's ``run.json`` holds the model fingerprint, the cut-off, the window, the
+verdict rules and the prior the evaluation used. :func:`evaluation_settings` reads them (and
+refuses a folder made with another model); after the audit has evaluated the cohort again,
+:func:`verdict_agreement` compares its verdicts with the folder's ``programs.csv`` and refuses
+any difference, so that one page never shows two verdicts for one program.
+"""
+
+from __future__ import annotations
+
+import json
+from dataclasses import dataclass, fields
+from pathlib import Path
+
+import pandas as pd
+
+from casemix.errors import InputError
+from casemix.stats.shrinkage import Prior
+from casemix.stats.verdict import Rules, rules_from_dict
+
+__all__ = ["EvaluationSettings", "check_audit_folder", "evaluation_settings", "verdict_agreement"]
+
+
+@dataclass(frozen=True)
+class EvaluationSettings:
+    """What an evaluation folder fixes for the audit.
+
+    Attributes
+    ----------
+    folder : Path
+    rules : Rules
+    prior : Prior
+        The prior as the evaluation used it (an estimated prior is not estimated again).
+    cutoff : str or None
+        ISO date of the evaluation's cut-off.
+    window : tuple of (str or None)
+        ISO dates of the evaluation's transplant-date window.
+    records_sha256 : str or None
+        Checksum of the cohort records file the evaluation read.
+    """
+
+    folder: Path
+    rules: Rules
+    prior: Prior
+    cutoff: str | None
+    window: tuple[str | None, str | None]
+    records_sha256: str | None
+
+
+def _run_json(folder: Path) -> dict:
+    path = folder / "run.json"
+    if not path.is_file():
+        raise InputError(
+            f"{folder}: no run.json; pass the folder `casemix evaluate` wrote (--evaluation)"
+        )
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as err:
+        raise InputError(f"{path}: not valid JSON ({err}); run the evaluation again") from err
+
+
+def evaluation_settings(folder: str | Path, model_fingerprint: str) -> EvaluationSettings:
+    """Read the settings of an evaluation folder, checking it used the audited model.
+
+    Parameters
+    ----------
+    folder : str or Path
+        A folder written by ``casemix evaluate`` (``Evaluation.save``).
+    model_fingerprint : str
+        The audited model's data fingerprint.
+
+    Raises
+    ------
+    InputError
+        No or unreadable ``run.json``, missing keys, or a model fingerprint that differs.
+    """
+    folder = Path(folder)
+    run = _run_json(folder)
+    try:
+        fingerprint = run["model"]["fingerprint"]
+        rules = rules_from_dict(run["rules"], source=str(folder / "run.json"))
+        stored = run["prior"]
+        prior = Prior(**{f.name: stored[f.name] for f in fields(Prior) if f.name in stored})
+        window = tuple(run.get("window") or (None, None))
+    except (KeyError, TypeError) as err:
+        raise InputError(
+            f"{folder / 'run.json'}: lacks {err}; run the evaluation again with this version"
+        ) from err
+    if fingerprint != model_fingerprint:
+        raise InputError(
+            f"the evaluation in {folder} was made with another reference model (fingerprint "
+            f"{str(fingerprint)[:12]}, the audited model's is {model_fingerprint[:12]}); audit "
+            "with the model the evaluation used"
+        )
+    sha = run.get("inputs", {}).get("records", {}).get("sha256")
+    return EvaluationSettings(folder, rules, prior, run.get("cutoff"), window, sha)
+
+
+def verdict_agreement(programs: pd.DataFrame, folder: str | Path) -> int:
+    """Check that the audit's programs carry the evaluation folder's verdicts.
+
+    Parameters
+    ----------
+    programs : DataFrame
+        The audit's own evaluation: ``program``, ``verdict``.
+    folder : str or Path
+        The evaluation folder (its ``programs.csv``).
+
+    Returns
+    -------
+    int
+        The number of programs compared (all of them agree).
+
+    Raises
+    ------
+    InputError
+        A program missing on either side or any verdict that differs, naming the programs.
+    """
+    path = Path(folder) / "programs.csv"
+    if not path.is_file():
+        raise InputError(f"{folder}: no programs.csv; pass the folder `casemix evaluate` wrote")
+    theirs = pd.read_csv(path, dtype={"program": str}).set_index("program")["verdict"]
+    ours = programs.assign(program=programs["program"].astype(str)).set_index("program")
+    ours = ours["verdict"]
+    if set(theirs.index) != set(ours.index):
+        only = sorted(set(theirs.index) ^ set(ours.index))
+        raise InputError(
+            f"the audit's cohort and the evaluation in {folder} hold different programs "
+            f"({', '.join(only[:5])}); pass the cohort records the evaluation read"
+        )
+    differ = sorted(p for p in ours.index if ours[p] != theirs[p])
+    if differ:
+        raise InputError(
+            f"the audit's verdicts differ from the evaluation in {folder} for "
+            f"{', '.join(differ[:5])}; pass the cohort records and cut-off the evaluation used"
+        )
+    return len(ours)
+
+
+def check_audit_folder(audit_folder: str | Path, run: dict) -> None:
+    """Refuse to show an audit beside an evaluation it did not evaluate like.
+
+    Parameters
+    ----------
+    audit_folder : str or Path
+        A folder written by ``Audit.save`` (its ``audit.json``).
+    run : dict
+        The evaluation's ``run.json``.
+
+    Raises
+    ------
+    InputError
+        The audit was made with another model, without a cohort, or with other rules or prior.
+    """
+    path = Path(audit_folder) / "audit.json"
+    try:
+        facts = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, json.JSONDecodeError) as err:
+        raise InputError(f"{path}: cannot be read ({err}); run the audit again") from err
+    if facts.get("model_fingerprint") != run["model"]["fingerprint"]:
+        raise InputError(
+            f"the audit in {audit_folder} checked another reference model than the "
+            "evaluation's; audit with the evaluation's model (casemix audit --evaluation)"
+        )
+    link = facts.get("evaluation")
+    same = link is not None and link["rules"] == run["rules"] and all(
+        link["prior"][k] == run["prior"][k] for k in ("shape", "rate")
+    )
+    if not same:
+        raise InputError(
+            f"the audit in {audit_folder} did not make its verdicts with this evaluation's "
+            "rules and prior; run it again with --evaluation on this evaluation folder"
+        )
