@@ -81,7 +81,9 @@ def evaluation_settings(folder: str | Path, model_fingerprint: str) -> Evaluatio
         fingerprint = run["model"]["fingerprint"]
         rules = rules_from_dict(run["rules"], source=str(folder / "run.json"))
         stored = run["prior"]
-        prior = Prior(**{f.name: stored[f.name] for f in fields(Prior) if f.name in stored})
+        values = {f.name: stored[f.name] for f in fields(Prior) if f.name in stored}
+        values["components"] = tuple(tuple(c) for c in values.get("components", ()))
+        prior = Prior(**values)
         window = tuple(run.get("window") or (None, None))
     except (KeyError, TypeError) as err:
         raise InputError(

@@ -161,7 +161,8 @@ class Prior:
             "note": self.note,
             "sd": float(self.sd),
             "centre": self.centre,
-            "components": len(self.components) or 1,
+            # (shape, rate, weight) per mixture component: enough to rebuild the prior exactly
+            "components": [list(c) for c in self.components],
             "hyperprior": self.hyperprior,
         }
 
