@@ -21,7 +21,7 @@ from scipy import stats
 
 import casemix
 from casemix._io import sha256_file, write_csv, write_json
-from casemix.data.cohort import build_cohort
+from casemix.data.cohort import DAY_ZERO_TIME, build_cohort
 from casemix.data.records import Records, read_records, to_timestamp
 from casemix.errors import InputError
 from casemix.model.reference import ReferenceModel
@@ -208,7 +208,10 @@ def _hazard_table(model: ReferenceModel, horizon: float) -> np.ndarray:
             f"longest follow-up of its fitting data) but monitoring needs day {top}; fit the "
             "model on data followed to the horizon or lower horizon_days in [monitoring]."
         )
+    # Day 0 holds what happens on the day of the transplant: the cohort puts those ends at
+    # DAY_ZERO_TIME (half a day), so the hazard of day 0 is read there.
     grid = np.arange(top + 1, dtype=float)
+    grid[0] = DAY_ZERO_TIME
     return np.vstack([b.at(grid) for b in model.fit.baselines])
 
 
@@ -216,6 +219,7 @@ def _programs(cohort, model: ReferenceModel, first, last, horizon: float):
     spec = model.spec
     frame = cohort.frame
     time = frame["time"].to_numpy(dtype=float)
+    time = np.where(time == DAY_ZERO_TIME, 0.0, time)  # an end on the transplant day: day 0
     if not np.array_equal(time, np.rint(time)):
         raise InputError("follow-up times must be whole days for monitoring in calendar time.")
     X, strata = model.matrices(cohort)
