@@ -4,8 +4,10 @@ For a recipient transplanted on day ``T`` (all dates are whole days):
 
 * event date ``D`` = the earliest of the outcome's date columns (none if all are empty);
 * potential follow-up end ``P`` = min(cut-off, ``T`` + horizon);
-* last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later (records already
-  do this and count it);
+* last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later and not after the
+  cut-off (records already do this and count it). An event after the cut-off lies outside
+  the period the data are complete for: it is not counted and does not lengthen follow-up
+  past the last real contact;
 * ``event`` = 1 if ``D`` exists and ``D <= P`` (an event on the day of the transplant, on the
   horizon day or on the cut-off day counts), else 0;
 * ``time`` = ``D - T`` if ``event`` else ``min(L, P) - T``, in days (float); never negative,
@@ -100,8 +102,11 @@ def follow_up(
     """
     ev = ((event_date - transplant) / _DAY).to_numpy(dtype=float)
     seen = ((last_seen - transplant) / _DAY).to_numpy(dtype=float)
-    seen = np.fmax(seen, ev)  # follow-up reaches any recorded event (fmax ignores NaN)
-    window = np.minimum(float(horizon_days), ((cutoff - transplant) / _DAY).to_numpy(float))
+    to_cutoff = ((cutoff - transplant) / _DAY).to_numpy(float)
+    # Follow-up reaches a recorded event up to the cut-off (fmax ignores NaN); a later event
+    # is not evidence of survival to the cut-off that the data can be trusted with.
+    seen = np.fmax(seen, np.where(ev <= to_cutoff, ev, np.nan))
+    window = np.minimum(float(horizon_days), to_cutoff)
     event = ev <= window  # False where there is no event (NaN compares False)
     time = np.where(event, ev, np.minimum(seen, window))
     return pd.DataFrame(
