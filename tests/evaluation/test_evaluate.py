@@ -38,9 +38,11 @@ DESIGN_COLUMNS = [
     "program", "recipients", "observed", "expected", "oe_ratio", "hr_mean", "hr_lower",
     "hr_upper", "p_above", "p_below", "verdict", "observed_survival", "expected_survival",
 ]  # fmt: skip
-# DEVELOPERS.md, "Evaluation folder", plus out_of_range.csv (Evaluation.out_of_range).
+# DEVELOPERS.md, "Evaluation folder", plus out_of_range.csv (Evaluation.out_of_range) and
+# corrections.csv (DESIGN.md, "outputs").
 FOLDER_FILES = [
-    "casemix.csv", "coefficients.csv", "curves.csv", "exclusions.csv", "followup.csv",
+    "casemix.csv", "coefficients.csv", "corrections.csv", "curves.csv", "exclusions.csv",
+    "followup.csv",
     "out_of_range.csv", "programs.csv", "recipients.csv", "run.json",
 ]  # fmt: skip
 
@@ -174,7 +176,8 @@ def test_run_facts(evaluation, by_race, model_a):
     assert run["inputs"]["records"]["sha256"] == hashlib.sha256(by_race.read_bytes()).hexdigest()
     assert run["inputs"]["model"]["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
     assert run["model"]["fingerprint"] == model.fingerprint
-    assert run["counts"] == {"read": 432, "kept": 431, "excluded": 1}
+    assert run["counts"] == {"read": 432, "kept": 431, "excluded": 1, "corrected": 0,
+                             "corrections": {}, "excluded_by_reason": {"missing age": 1}}
     json.dumps(run, allow_nan=False)  # plain JSON, no NaN
 
 

@@ -26,7 +26,7 @@ Plain pandas/numpy arithmetic on datetime64 columns; nothing is hand-written bey
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -63,6 +63,9 @@ class Cohort:
         Records read from the file; ``n_read == len(frame) + len(exclusions)``.
     lost_after_days : float
         The lost-to-follow-up threshold used.
+    corrections : pandas.DataFrame or None
+        ``row``, ``recipient``, ``program``, ``kind``: the records' corrections of the
+        recipients kept in the cohort (those of excluded records are not repeated).
     """
 
     frame: pd.DataFrame
@@ -74,6 +77,7 @@ class Cohort:
     window: tuple[pd.Timestamp | None, pd.Timestamp | None]
     n_read: int
     lost_after_days: float = 182.0
+    corrections: pd.DataFrame | None = field(default=None, repr=False)
 
 
 def follow_up(
@@ -194,7 +198,18 @@ def build_cohort(
         window=(start, end),
         n_read=records.n_read,
         lost_after_days=float(lost_after_days),
+        corrections=_kept_corrections(records, out.index),
     )
+
+
+def _kept_corrections(records: Records, kept: pd.Index) -> pd.DataFrame:
+    corrections = records.corrections
+    if corrections is None or corrections.empty:
+        return pd.DataFrame({"row": pd.Series(dtype=np.int64),
+                             **{c: pd.Series(dtype=object)
+                                for c in ("recipient", "program", "kind")}})
+    inside = corrections["row"].isin(np.asarray(kept) + 1).to_numpy()
+    return corrections.loc[inside].reset_index(drop=True)
 
 
 def _horizon(value: float | None, default: int | None) -> float:

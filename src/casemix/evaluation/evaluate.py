@@ -17,7 +17,7 @@ from scipy import stats
 import casemix
 from casemix._io import sha256_file, write_csv, write_json
 from casemix.data.cohort import build_cohort
-from casemix.data.records import Records, read_records
+from casemix.data.records import Records, count_by_kind, read_records
 from casemix.errors import InputError
 from casemix.evaluation.expected import expected_events
 from casemix.evaluation.explain import casemix_contributions
@@ -76,7 +76,10 @@ class Evaluation:
     recipients : DataFrame
         ``recipient``, ``program``, ``time``, ``event``, ``expected``, ``lp``, ``stratum``.
     exclusions : DataFrame
-        ``row``, ``recipient``, ``reason``.
+        ``row``, ``recipient``, ``reason``, ``program``, ``kind``.
+    corrections : DataFrame
+        ``row``, ``recipient``, ``program``, ``kind``: one line per correction of a recipient
+        kept in the cohort (see casemix.data.records).
     followup : DataFrame
         Per program: follow-up completeness and lost to follow-up.
     casemix : DataFrame
@@ -104,6 +107,7 @@ class Evaluation:
     prior: Prior
     rules: Rules
     run: dict
+    corrections: pd.DataFrame | None = None
 
     def save(self, folder: str | Path) -> Path:
         """Write the evaluation files into ``folder`` (created if missing), each atomically."""
@@ -113,6 +117,7 @@ class Evaluation:
             "programs.csv": self.programs,
             "recipients.csv": self.recipients,
             "exclusions.csv": self.exclusions,
+            "corrections.csv": self.corrections,
             "followup.csv": self.followup,
             "casemix.csv": self.casemix,
             "curves.csv": self.curves,
@@ -120,7 +125,8 @@ class Evaluation:
             "out_of_range.csv": self.out_of_range,
         }
         for name, table in tables.items():
-            write_csv(folder / name, table)
+            if table is not None:
+                write_csv(folder / name, table)
         write_json(folder / "run.json", self.run)
         return folder
 
@@ -234,6 +240,7 @@ def evaluate(
         prior=prior,
         rules=rules,
         run=run,
+        corrections=cohort.corrections,
     )
 
 
@@ -275,6 +282,11 @@ def _run_facts(records, cohort, model, model_path, prior, rules) -> dict[str, An
             "read": int(cohort.n_read),
             "kept": len(cohort.frame),
             "excluded": len(cohort.exclusions),
+            "corrected": int(cohort.corrections["row"].nunique()),
+            "corrections": {str(k): int(n) for k, n in
+                            cohort.corrections["kind"].value_counts().sort_index().items()},
+            "excluded_by_reason": {str(k): int(n) for k, n in
+                                   count_by_kind(cohort.exclusions).itertuples(index=False)},
         },
         "cautions": list(CAUTIONS),
     }

@@ -172,7 +172,9 @@ def evaluated_section(data: EvaluationFolder, options: ReportOptions) -> Section
         ("Verdict rules", _rules_text(run["rules"])),
         ("Records", f"{_count(counts.get('read'), options)} read, "
                     f"{_count(counts.get('kept'), options)} kept, "
-                    f"{_count(counts.get('excluded'), options)} excluded"),
+                    f"{_count(counts.get('excluded'), options)} excluded"
+                    + ("" if "corrected" not in counts else
+                       f"; {_count(counts['corrected'], options)} kept with a correction")),
     ]
     inputs = _inputs_frame(run.get("inputs"))
     body = [Markup(facts_html(facts))]
@@ -396,8 +398,39 @@ def data_quality_section(data: EvaluationFolder, options: ReportOptions) -> Sect
     note = Markup("<p>Follow-up completeness is the share of the follow-up that would be "
                   "possible up to the horizon or the cut-off that was actually observed.</p>")
     return Section("Data quality", _join(Markup("<h3>Records excluded, by reason</h3>"),
-                                         excluded, Markup("<h3>Follow-up per program</h3>"),
+                                         excluded,
+                                         Markup("<h3>Records kept with a correction</h3>"),
+                                         _corrections_html(data, options),
+                                         Markup("<h3>Follow-up per program</h3>"),
                                          note, Markup(table)), anchor="data-quality")
+
+
+_CORRECTION_WORDS = {
+    "event_after_last_seen": "Event after last seen (follow-up extended to the event)",
+    "event_after_cutoff": "Event after the cut-off (not counted; follow-up not lengthened)",
+    "last_seen_after_cutoff": "Last seen after the cut-off (follow-up ends at the cut-off)",
+}
+
+
+def _corrections_html(data: EvaluationFolder, options: ReportOptions) -> Markup:
+    """Corrections of kept records per program and kind (counts suppressed as elsewhere)."""
+    if data.corrections is None:
+        return Markup("<p>Not recorded: this folder was written by an older version "
+                      "without corrections.csv.</p>")
+    if data.corrections.empty:
+        return Markup("<p>No kept record needed a correction.</p>")
+    table = (data.corrections.groupby(["program", "kind"], sort=True).size()
+             .unstack("kind", fill_value=0))
+    kinds = [k for k in (*_CORRECTION_WORDS, *sorted(table.columns)) if k in table.columns]
+    table = table[list(dict.fromkeys(kinds))]
+    table["total"] = table.sum(axis=1)
+    table = table.reset_index()
+    counts = [c for c in table.columns if c != "program"]
+    for column in counts:
+        table[column] = counts_text(table[column], options)
+    headers = {"program": "Program", "total": "Records corrected",
+               **{k: _CORRECTION_WORDS.get(k, k) for k in kinds}}
+    return Markup(table_html(table, headers=headers, numeric=counts))
 
 
 # -- 7. The reference model ----------------------------------------------------------------
