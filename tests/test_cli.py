@@ -36,6 +36,7 @@ DEMO_FILES = [
 EVALUATION_FILES = ["programs.csv", "recipients.csv", "exclusions.csv", "run.json"]
 COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit"]
 REFERENCE_CUTOFF, COHORT_CUTOFF = "2022-12-31", "2025-06-30"
+CHECK_SHOWN = 20  # excluded records `casemix check` prints (the rest go to --out)
 
 
 def invoke(*args: object) -> Result:
@@ -272,6 +273,70 @@ def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
     result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF)
     assert_exit(result, 0, "120 records read, 118 kept, 2 excluded",
                 "'2023-02-30' is not a date", "'next spring' is not a date")
+
+
+def test_check_without_a_cutoff_says_what_it_skipped_and_flags_future_dates(demo_dir, tmp_path):
+    def future(frame):
+        frame = frame.copy()
+        frame.loc[4, ["transplant_date", "last_seen_date"]] = "2099-03-01"
+        return frame
+
+    path = _extract(demo_dir, tmp_path, "future.csv", future)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 0, "120 records read, 119 kept, 1 excluded",
+                r"transplant_date 2099-03-01 is after today",
+                r"not checked: no cut-off given \(--cutoff, or \[analysis\] cutoff")
+    assert count_table(result.output, "Excluded, by reason") == {"date after today": 1}
+
+
+def test_check_against_a_model_lists_every_problem_at_once(demo_dir, tmp_path):
+    def unseen(frame):
+        frame = frame.copy()
+        frame.loc[2, "recipient_sex"] = "x"
+        frame.loc[6, "donor_type"] = "domino"
+        return frame
+
+    path = _extract(demo_dir, tmp_path, "levels.csv", unseen)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF,
+                    "--model", demo_dir / "model.json")
+    assert_exit(result, 1, r"covariate recipient_sex .*'x' in row 3",
+                r"covariate donor_type .*'domino' in row 7", "fit the reference model again",
+                "not usable")
+    fine = invoke("check", _extract(demo_dir, tmp_path, "fine.csv"), "--spec",
+                  demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF, "--model",
+                  demo_dir / "model.json")
+    assert_exit(fine, 0, "The extract is usable")
+    assert "not checked: no model" not in fine.output
+
+
+def test_check_warns_above_the_exclusion_share_and_writes_every_list(demo_dir, network,
+                                                                     tmp_path):
+    # The cohort's planted rows plus a window of one year: most transplants fall outside it.
+    out = tmp_path / "checked"
+    result = invoke("check", demo_dir / "cohort.csv", "--spec", demo_dir / "spec.toml",
+                    "--cutoff", COHORT_CUTOFF, "--from", "2024-01-01", "--to", "2024-12-31",
+                    "--out", out)
+    assert_exit(result, 0, r"excluded \(\d+\.\d%\)", r"warning: \d+ of \d+ records \(\d+\.\d%\) "
+                r"are excluded, more than 20%", "transplanted outside the cohort window",
+                "usable, with")
+    exclusions = pd.read_csv(out / "exclusions.csv")
+    n_read = len(network.cohort)
+    before = (network.cohort["transplant_date"] < "2024-01-01").sum()
+    assert len(exclusions) > CHECK_SHOWN and len(exclusions) >= before  # the full list
+    assert sum(count_table(result.output, "Excluded, by reason").values()) == len(exclusions)
+    corrections = pd.read_csv(out / "corrections.csv")
+    assert f"{n_read} records read, {n_read - len(exclusions)} kept" in result.output
+    assert set(corrections.columns) == {"row", "recipient", "program", "kind"}
+
+
+def test_check_notes_a_reference_level_that_does_not_occur(demo_dir, tmp_path):
+    spec = tmp_path / "spec.toml"
+    text = (demo_dir / "spec.toml").read_text(encoding="utf-8")
+    spec.write_text(text.replace('reference = "deceased"', 'reference = "Deceased"'))
+    result = invoke("check", _extract(demo_dir, tmp_path, "c.csv"), "--spec", spec,
+                    "--cutoff", COHORT_CUTOFF)
+    assert_exit(result, 0, r"covariate donor_type .*the reference level 'Deceased' declared "
+                r"in the spec does not occur")
 
 
 def test_check_bad_cutoff_is_a_usage_error(demo_dir):

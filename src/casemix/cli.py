@@ -167,28 +167,53 @@ def check(
     records: ExistingFile,
     spec: SpecOption,
     cutoff: CutoffOption = None,
+    window_from: FromOption = None,
+    window_to: ToOption = None,
+    model: Annotated[
+        Path | None,
+        typer.Option("--model", exists=True, dir_okay=False,
+                     help="Also check against a fitted reference model (.json)."),
+    ] = None,
+    out_dir: Annotated[
+        Path | None,
+        typer.Option("--out", file_okay=False,
+                     help="Write every exclusion and correction (CSV) into this folder."),
+    ] = None,
 ) -> None:
     """Validate an extract: what would be excluded and why, per reason and per program.
 
     Exit code 0 when the extract is usable, 1 when it is not (missing columns, duplicate
-    recipient ids, unreadable file).
+    recipient ids, unreadable file, covariates the --model cannot encode).
 
     Example: casemix check cohort.csv --spec spec.toml --cutoff 2025-06-30
+    --from 2023-01-01 --to 2024-12-31 --model model.json --out checked
     """
+    from casemix._io import write_csv
+    from casemix.data.check import check_extract
     from casemix.data.records import read_records
+    from casemix.model.reference import ReferenceModel
 
+    cut = _date(cutoff, "--cutoff")
+    window = (_date(window_from, "--from"), _date(window_to, "--to"))
     with _guarded():
-        result = read_records(records, spec, cutoff=_date(cutoff, "--cutoff"))
+        reference = None if model is None else ReferenceModel.load(model)
+        data = read_records(records, spec, cutoff=cut)
+        result = check_extract(data, window=window, model=reference)
+        if out_dir is not None:
+            write_csv(out_dir / "exclusions.csv", result.exclusions)
+            write_csv(out_dir / "corrections.csv", result.corrections)
+    excluded = len(result.exclusions)
     out.print(
-        f"{records}: {result.n_read} records read, {len(result.frame)} kept, "
-        f"{len(result.exclusions)} excluded"
+        f"{records}: {data.n_read} records read, {result.n_kept} kept, {excluded} excluded "
+        f"({excluded / data.n_read:.1%}), {result.corrections['row'].nunique()} kept with a "
+        "correction"
     )
-    if len(result.exclusions):
-        _print_counts("Excluded, by reason", _reason_counts(result.exclusions), "reason")
+    if excluded:
+        _print_counts("Excluded, by reason", result.by_reason, "reason")
         shown = result.exclusions[["row", "recipient", "reason"]].head(CHECK_LISTED)
         title = "Excluded records" + (
-            f" (first {CHECK_LISTED} of {len(result.exclusions)})"
-            if len(result.exclusions) > CHECK_LISTED
+            f" (first {CHECK_LISTED} of {excluded}; all in --out DIR/exclusions.csv)"
+            if excluded > CHECK_LISTED
             else ""
         )
         _print_counts(title, shown.astype(str), "reason")
@@ -200,14 +225,24 @@ def check(
             .reset_index()
         )
         _print_counts("Excluded, by program", by_program, "program")
-    if len(result.warnings):
-        _print_counts("Kept with a correction", result.warnings, "program")
-    out.print("The extract is usable.")
-
-
-def _reason_counts(exclusions: pd.DataFrame) -> pd.DataFrame:
-    kinds = exclusions["kind"].str.split("; ").explode()
-    return kinds.value_counts().rename_axis("reason").rename("records").reset_index()
+    if len(result.corrections):
+        counts = result.corrections.groupby(["program", "kind"]).size().rename("count")
+        _print_counts("Kept with a correction", counts.reset_index(), "program")
+    if data.emptied is not None and len(data.emptied):
+        _print_counts("Cells read as missing, by token", data.emptied, "token")
+    for text in result.skipped:
+        out.print(f"not checked: {text}", markup=False)
+    for text in result.warnings:
+        err.print(f"warning: {text}", markup=False)
+    if out_dir is not None:
+        out.print(f"every exclusion and correction written to {out_dir}")
+    if not result.usable:
+        for text in result.problems:
+            err.print(f"error: {text}", markup=False)
+        err.print("The extract is not usable as it is.", markup=False)
+        raise typer.Exit(1)
+    out.print("The extract is usable" + (
+        f", with {len(result.warnings)} warning(s) above." if result.warnings else "."))
 
 
 def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:

@@ -34,7 +34,7 @@ import pandas as pd
 from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
 
-__all__ = ["Cohort", "build_cohort", "follow_up"]
+__all__ = ["Cohort", "apply_window", "build_cohort", "follow_up"]
 
 _DAY = pd.Timedelta(days=1)
 
@@ -176,9 +176,8 @@ def build_cohort(
                 f"records file '{records.source}' has a column '{name}', which the cohort "
                 "adds; rename that column in the file."
             )
-    tx = frame[spec.columns.transplant_date]
-    reasons = _window_reasons(tx, stamp, start, end)
-    out = frame.loc[reasons["reason"].isna()].copy()
+    exclusions, kept = apply_window(records, stamp, (start, end))
+    out = frame.loc[kept].copy()
     fu = follow_up(
         out[spec.columns.transplant_date],
         out[spec.columns.last_seen],
@@ -190,7 +189,7 @@ def build_cohort(
     out["event"] = fu["event"]
     return Cohort(
         frame=out,
-        exclusions=_exclusions(records, reasons),
+        exclusions=exclusions,
         followup=_followup(out[spec.columns.program], fu, lost_after_days),
         outcome=outcome,
         horizon_days=horizon,
@@ -257,13 +256,50 @@ def _window(window: tuple[object, object] | None) -> tuple[pd.Timestamp | None, 
     return (start, end)
 
 
-def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp, start: pd.Timestamp | None,
+def apply_window(records: Records, cutoff: object,
+                 window: tuple[object, object] | None) -> tuple[pd.DataFrame, pd.Index]:
+    """Exclude the kept records transplanted after the cut-off or outside the window.
+
+    Parameters
+    ----------
+    records : Records
+    cutoff : date-like or None
+        None skips the cut-off check.
+    window : (date-like or None, date-like or None) or None
+        Inclusive transplant-date window.
+
+    Returns
+    -------
+    exclusions : pandas.DataFrame
+        The records' exclusions plus these, sorted by row (columns as ``Records.exclusions``).
+    kept : pandas.Index
+        Index of ``records.frame`` of the recipients left.
+
+    Raises
+    ------
+    InputError
+        A window whose start is after its end, or a cut-off before the window starts.
+    """
+    stamp = to_timestamp(cutoff, "cut-off")
+    start, end = _window(window)
+    if stamp is not None and start is not None and stamp < start:
+        raise InputError(
+            f"the cut-off {stamp:%Y-%m-%d} precedes the cohort window, which starts "
+            f"{start:%Y-%m-%d}: no transplant in the window has any follow-up. Check the "
+            "cut-off and the window (--cutoff, --from, or [analysis] in the spec)."
+        )
+    tx = records.frame[records.spec.columns.transplant_date]
+    reasons = _window_reasons(tx, stamp, start, end)
+    return _exclusions(records, reasons), tx.index[reasons["reason"].isna().to_numpy()]
+
+
+def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timestamp | None,
                     end: pd.Timestamp | None) -> pd.DataFrame:
     """Reason text and kind for recipients outside the cut-off or window (missing otherwise)."""
     day = tx.dt.strftime("%Y-%m-%d")
     reasons = pd.DataFrame({"reason": None, "kind": None}, index=tx.index, dtype=object)
-    checks = [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
-               "transplanted after the cut-off")]
+    checks = [] if cutoff is None else [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
+                                         "transplanted after the cut-off")]
     if end is not None:
         checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})",
                        "transplanted outside the cohort window"))

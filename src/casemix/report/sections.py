@@ -423,7 +423,7 @@ def _corrections_html(data: EvaluationFolder, options: ReportOptions) -> Markup:
              .unstack("kind", fill_value=0))
     kinds = [k for k in (*_CORRECTION_WORDS, *sorted(table.columns)) if k in table.columns]
     table = table[list(dict.fromkeys(kinds))]
-    table["total"] = table.sum(axis=1)
+    table["total"] = data.corrections.groupby("program", sort=True)["row"].nunique()
     table = table.reset_index()
     counts = [c for c in table.columns if c != "program"]
     for column in counts:
