@@ -377,6 +377,32 @@ def test_fit_unknown_outcome_is_named(demo_dir, tmp_path):
     assert not (tmp_path / "model.json").exists()
 
 
+def test_fit_takes_the_horizon_from_the_spec_and_counts_add_up(demo_dir, network, tmp_path):
+    out = tmp_path / "model.json"
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_failure", "--cutoff", REFERENCE_CUTOFF,
+                    "--from", "2019-01-01", "--out", out)
+    assert_exit(result, 0, r"at 365 days \(from the spec's \[analysis\] horizon_days\)")
+    counts = re.search(r"(\d+) records read: (\d+) used, (\d+) excluded \((\d+) by the record "
+                       r"checks, (\d+) transplanted after the cut-off 2022-12-31 or outside the "
+                       r"window 2019-01-01 to any\)", result.output)
+    read, used, excluded, checks, window = (int(g) for g in counts.groups())
+    assert read == len(network.reference) and read == used + excluded
+    assert excluded == checks + window and window > 0
+    # the generator's own dates: transplants before 2019 (none of them planted ones)
+    early = (network.reference["transplant_date"] < "2019-01-01").sum()
+    assert early - checks <= window <= early  # some early ones fail a record check first
+
+
+def test_fit_refuses_a_horizon_the_reference_follow_up_does_not_reach(demo_dir, tmp_path):
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_failure", "--horizon", 5000,
+                    "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
+    assert_exit(result, 1, r"cannot support a horizon of 5000 days: its longest follow-up is "
+                r"\d+ days and none of its \d+ recipients was followed to day 5000")
+    assert not (tmp_path / "model.json").exists()
+
+
 @pytest.mark.parametrize(
     ("option", "value", "pattern"),
     [

@@ -259,8 +259,12 @@ def fit(
     records: ExistingFile,
     spec: SpecOption,
     outcome: Annotated[str, typer.Option("--outcome", help="An outcome named in the spec.")],
-    horizon: Annotated[int, typer.Option("--horizon", min=1, help="Horizon in days.")],
     out_path: Annotated[Path, typer.Option("--out", dir_okay=False, help="Model file (.json).")],
+    horizon: Annotated[
+        int | None,
+        typer.Option("--horizon", min=1,
+                     help="Horizon in days (default: horizon_days in the spec's [analysis])."),
+    ] = None,
     cutoff: CutoffOption = None,
     window_from: FromOption = None,
     window_to: ToOption = None,
@@ -273,6 +277,7 @@ def fit(
     Example: casemix fit reference.csv --spec spec.toml --outcome graft_failure
     --horizon 365 --cutoff 2022-12-31 --out model.json
     """
+    from casemix.data.cohort import apply_window
     from casemix.data.records import read_records
     from casemix.model.reference import fit_reference
 
@@ -284,13 +289,27 @@ def fit(
         model = fit_reference(data, data.spec, outcome, horizon, cut, ties.value, window)
         model.save(out_path)
         step("saved")
+        excluded, _ = apply_window(data, model.cutoff, model.window)
     fit_ = model.fit
+    source = "--horizon" if horizon is not None else "the spec's [analysis] horizon_days"
     out.print(
-        f"fitted {outcome} at {horizon} days on {fit_.n} recipients with {fit_.n_events} events "
-        f"({len(fit_.names)} terms, concordance {model.concordance:.3f}); "
-        f"{len(data.exclusions)} records excluded"
+        f"fitted {outcome} at {model.horizon_days} days (from {source}) on {fit_.n} recipients "
+        f"with {fit_.n_events} events ({len(fit_.names)} terms, concordance "
+        f"{model.concordance:.3f})",
+        markup=False,
+    )
+    out.print(
+        f"{data.n_read} records read: {fit_.n} used, {len(excluded)} excluded "
+        f"({len(data.exclusions)} by the record checks, "
+        f"{len(excluded) - len(data.exclusions)} transplanted after the cut-off "
+        f"{model.cutoff.isoformat()} or outside the window {_window_words(model.window)})"
     )
     out.print(f"model written to {out_path}")
+
+
+def _window_words(window) -> str:
+    start, end = (None if d is None else d.isoformat() for d in window)
+    return f"{start or 'any'} to {end or 'any'}"
 
 
 @app.command()

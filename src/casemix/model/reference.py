@@ -366,6 +366,19 @@ def resolve_analysis(spec: Spec, horizon_days, cutoff, window) -> tuple[int, dt.
     return int(horizon_days), _as_date(cutoff, "cut-off"), window
 
 
+def _check_horizon_support(time: np.ndarray, horizon_days: int, records: Records) -> None:
+    if len(time) and time.max() >= horizon_days:
+        return
+    longest = f"{time.max():g} days" if len(time) else "none (no recipient is left)"
+    raise InputError(
+        f"the reference population of '{records.source}' cannot support a horizon of "
+        f"{horizon_days} days: its longest follow-up is {longest} and none of its "
+        f"{len(time)} recipients was followed to day {horizon_days}, so the baseline hazard "
+        "would stop short of the horizon. Choose a horizon the reference follow-up reaches, "
+        "or a reference population with longer follow-up (a later cut-off)."
+    )
+
+
 def fit_reference(
     records: Records,
     spec: Spec | str | Path | None = None,
@@ -392,6 +405,12 @@ def fit_reference(
     ties : {"efron", "breslow"}
     window : (date or None, date or None), optional
         Transplant-date window of the reference population.
+
+    Raises
+    ------
+    InputError
+        No reference recipient was followed to the horizon: the baseline hazard would stop
+        short of it and every expected count at the horizon would be an extrapolation.
     """
     if spec is None:
         spec = records.spec
@@ -400,6 +419,7 @@ def fit_reference(
     spec.outcome(outcome)
     horizon_days, cutoff, window = resolve_analysis(spec, horizon_days, cutoff, window)
     data = reference_data(records, spec, outcome, horizon_days, cutoff, window)
+    _check_horizon_support(data.time, horizon_days, records)
     fit = fit_cox(
         data.time, data.event, data.X, ties=ties, strata=data.strata, names=data.design.columns
     )
