@@ -189,6 +189,22 @@ def test_demo_tells_the_stories_it_was_built_with(demo_dir):
     assert programs.loc["LV05", "verdict"] == "excess"
 
 
+def test_demo_report_and_run_show_the_planted_corrections(demo_dir, demo_run, network):
+    planted = network.planted[(network.planted["role"] == "cohort")
+                              & (network.planted["handling"] == "kept, warned")]
+    programs = network.cohort.set_index("recipient_id").loc[planted["recipient_id"], "program"]
+    run = json.loads((demo_dir / "run.json").read_text(encoding="utf-8"))
+    assert run["counts"]["corrected"] == len(planted) == 4
+    assert "4 kept with a correction (corrections.csv)" in demo_run[1].output
+    rows = html_rows(demo_dir / "report.html")
+    header = next(r for r in rows if "Records corrected" in r)
+    total = header.index("Records corrected")
+    body = rows[rows.index(header) + 1:]
+    body = body[:next(i for i, r in enumerate(body) if r[0] not in PROGRAMS)]
+    shown = {r[0]: int(r[total]) for r in body}
+    assert shown == programs.value_counts().to_dict()
+
+
 def test_demo_into_an_existing_file_is_a_usage_error(tmp_path):
     target = tmp_path / "taken"
     target.write_text("not a folder\n")
@@ -453,6 +469,43 @@ def test_evaluate_writes_the_files_with_the_chosen_prior(demo_dir, tmp_path, pri
     assert run["cutoff"] == COHORT_CUTOFF
     programs = pd.read_csv(out / "programs.csv")
     assert sorted(programs["program"]) == PROGRAMS
+
+
+def test_evaluate_says_where_the_cut_off_and_window_came_from_and_counts(demo_dir, network,
+                                                                         tmp_path):
+    out = tmp_path / "results"
+    result = _evaluate(demo_dir, out)
+    assert_exit(result, 0, r"cut-off 2025-06-30 \(from --cutoff\); window 2022-01-01 to "
+                r"2024-12-31 \(from --from/--to\)")
+    counts = json.loads((out / "run.json").read_text(encoding="utf-8"))["counts"]
+    assert (f"{counts['read']} records read: {counts['kept']} kept, {counts['excluded']} "
+            f"excluded (exclusions.csv), {counts['corrected']} kept with a correction") in (
+        result.output)
+    assert counts["read"] == len(network.cohort) == counts["kept"] + counts["excluded"]
+    # The planted corrections of the demo cohort (the generator's record), kept and listed.
+    planted = network.planted[(network.planted["role"] == "cohort")
+                              & (network.planted["handling"] == "kept, warned")]
+    corrections = pd.read_csv(out / "corrections.csv", dtype={"recipient": str})
+    assert set(corrections["recipient"]) == set(planted["recipient_id"])
+    assert counts["corrected"] == len(planted) == 4
+    bare = invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                  "--cutoff", COHORT_CUTOFF, "--no-report", "--out", tmp_path / "bare")
+    assert_exit(bare, 0, r"window any to any \(from no window given: every transplant\)")
+
+
+def test_evaluate_warns_when_one_reason_excludes_a_large_share(demo_dir, tmp_path):
+    result = _evaluate(demo_dir, tmp_path / "r", "--from", "2024-01-01")
+    assert_exit(result, 0, r"warning: .*cohort.csv: \d+ of \d+ records \(\d+\.\d%\) are "
+                r"excluded as \"transplanted outside the cohort window\", more than 20%")
+
+
+def test_evaluate_cut_off_before_the_window_is_said_in_iso_dates(demo_dir, tmp_path):
+    result = invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                    "--cutoff", "2021-01-01", "--from", "2022-01-01", "--no-report",
+                    "--out", tmp_path / "r")
+    assert_exit(result, 1, r"the cut-off 2021-01-01 precedes the cohort window, which starts "
+                r"2022-01-01")
+    assert "datetime" not in result.output
 
 
 def test_evaluate_fixed_prior_gives_the_conjugate_posterior(demo_dir, tmp_path):

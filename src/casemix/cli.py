@@ -369,7 +369,35 @@ def _write_report(folder: Path, out_file: Path | None = None, suppress_below=Non
     return write_report(folder, out_file, suppress_below=suppress_below, audit_folder=audit)
 
 
+_SOURCES = {
+    "cutoff": {"given": "--cutoff", "records": "the records", "spec": "the [analysis] "
+               "cutoff of the spec stored in the model"},
+    "window": {"given": "--from/--to", "spec": "the [analysis] cohort_from/cohort_to of the "
+               "spec stored in the model", "none": "no window given: every transplant"},
+}
+
+
+def _counts(result) -> None:
+    """Print where the cut-off and window came from, and what happened to every record."""
+    run = result.run
+    sources = run.get("provenance", {})
+    start, end = run["window"]
+    out.print(
+        f"cut-off {run['cutoff']} (from {_SOURCES['cutoff'].get(sources.get('cutoff'), '?')}); "
+        f"window {start or 'any'} to {end or 'any'} "
+        f"(from {_SOURCES['window'].get(sources.get('window'), '?')})",
+        markup=False,
+    )
+    counts = run["counts"]
+    out.print(
+        f"{counts['read']} records read: {counts['kept']} kept, {counts['excluded']} excluded "
+        f"(exclusions.csv), {counts['corrected']} kept with a correction (corrections.csv)",
+        markup=False,
+    )
+
+
 def _summary(result, folder: Path, report: bool) -> None:
+    _counts(result)
     programs = result.programs
     level = f"{100 * result.rules.credible_level:g}%"
     table = Table(title="Programs (HR: shrunken hazard ratio)", title_justify="left", box=None)

@@ -6,6 +6,7 @@ contract the report and the command line read; see DEVELOPERS.md).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -16,9 +17,10 @@ from scipy import stats
 
 import casemix
 from casemix._io import sha256_file, write_csv, write_json
+from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, count_by_kind, read_records
-from casemix.errors import InputError
+from casemix.errors import DataWarning, InputError
 from casemix.evaluation.expected import expected_events
 from casemix.evaluation.explain import casemix_contributions
 from casemix.evaluation.programs import program_table, survival_curves
@@ -198,6 +200,7 @@ def evaluate(
         model = ReferenceModel.load(model_path)
     records = _records(cohort_records, model, cutoff)
     rules = _rules(rules)
+    provenance = _provenance(cohort_records, records, model, cutoff, window)
     if cutoff is None:
         cutoff = records.cutoff
     _, cutoff, window = resolve_analysis(model.spec, model.horizon_days, cutoff, window)
@@ -205,8 +208,12 @@ def evaluate(
     if cohort.frame.empty:
         raise InputError(
             f"no recipient of {records.source} is left in the evaluation cohort (cut-off "
-            f"{cutoff}, window {window}); check the dates and the exclusions"
+            f"{_date_text(cutoff)}, window {_date_text(window[0]) or 'any'} to "
+            f"{_date_text(window[1]) or 'any'}); all {cohort.n_read} records are excluded. "
+            "Check the dates and the exclusions."
         )
+    for text in reason_warnings(cohort.exclusions, cohort.n_read):
+        warnings.warn(DataWarning(f"{records.source}: {text}"), stacklevel=2)
     expected = expected_events(cohort, model)
     table = program_table(expected, level=rules.credible_level)
     observed, exp = table["observed"].to_numpy(), table["expected"].to_numpy()
@@ -228,6 +235,7 @@ def evaluate(
     )
     programs["casemix_factor"] = programs["program"].map(totals).to_numpy()
     run = _run_facts(records, cohort, model, model_path, prior, rules)
+    run["provenance"] = provenance
     return Evaluation(
         programs=programs[PROGRAM_COLUMNS],
         recipients=expected.frame.drop(columns="expected_at_horizon"),
@@ -242,6 +250,24 @@ def evaluate(
         run=run,
         corrections=cohort.corrections,
     )
+
+
+def _provenance(given_records, records: Records, model: ReferenceModel, cutoff,
+                window) -> dict[str, str]:
+    """Where the cut-off and the window come from: given, the records, or the model's spec."""
+    if cutoff is not None:
+        cut = "given"
+    elif isinstance(given_records, Records) and records.cutoff is not None:
+        cut = "records"
+    else:
+        cut = "spec"
+    if window is not None:
+        win = "given"
+    elif model.spec.analysis.window != (None, None):
+        win = "spec"
+    else:
+        win = "none"
+    return {"cutoff": cut, "window": win}
 
 
 def _date_text(value) -> str | None:
