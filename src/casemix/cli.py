@@ -476,7 +476,9 @@ def audit(
         Path | None,
         typer.Option("--cohort", exists=True, dir_okay=False, help="Evaluation cohort records."),
     ] = None,
-    bootstrap: Annotated[int, typer.Option("--bootstrap", min=0, help="Bootstrap refits.")] = 200,
+    bootstrap: Annotated[
+        int, typer.Option("--bootstrap", min=2, help="Bootstrap refits (at least 2).")
+    ] = 200,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed.")] = 0,
     cutoff: Annotated[
         str | None, typer.Option("--cutoff", help="Cut-off of the cohort records (YYYY-MM-DD).")

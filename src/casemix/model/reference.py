@@ -91,7 +91,7 @@ def reference_data(
     )
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class ReferenceModel:
     """A fitted reference model: everything needed to compute expected events for a cohort.
 
@@ -129,6 +129,14 @@ class ReferenceModel:
     concordance: float
     casemix_version: str
     group_offsets: tuple[float, ...]
+
+    def __repr__(self) -> str:
+        fit = self.fit
+        return (
+            f"<ReferenceModel {self.outcome} at {self.horizon_days} days: {len(fit.names)} "
+            f"terms, {fit.n} recipients, {fit.n_events} events, cut-off "
+            f"{self.cutoff.isoformat()}, fingerprint {self.fingerprint[:12]}>"
+        )
 
     def matrices(self, cohort: Cohort) -> tuple[np.ndarray, np.ndarray | None]:
         """Return the design matrix and strata of a cohort under this model's frozen design."""

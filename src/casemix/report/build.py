@@ -109,7 +109,7 @@ def render_report(
         model_section(data, options),
     ]
     if audit_folder is not None:
-        sections.append(audit_section(audit_folder))
+        sections.append(audit_section(audit_folder, data.run["model"].get("fingerprint")))
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
     return render_page(

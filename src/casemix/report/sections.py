@@ -466,21 +466,38 @@ def _p_value(p: float) -> str:
 # -- 8. Audit ------------------------------------------------------------------------------
 
 
+def _check_audit_folder(folder: Path, fingerprint: str | None) -> None:
+    absent = [n for n in ("findings.json", "audit.json") if not (folder / n).is_file()]
+    if absent:
+        raise InputError(
+            f"{folder}: not a complete audit folder ({' and '.join(absent)} missing), so an "
+            "empty list of findings would read like a clean audit. Pass the folder "
+            "`casemix audit ... --out DIR` wrote, or run the audit again."
+        )
+    try:
+        facts = json.loads((folder / "audit.json").read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"{folder / 'audit.json'}: not valid JSON ({err}); run the audit "
+                         "again.") from err
+    theirs = facts.get("model_fingerprint") if isinstance(facts, dict) else None
+    if fingerprint is not None and theirs != fingerprint:
+        raise InputError(
+            f"{folder}: the audit is of another reference model (fingerprint "
+            f"{str(theirs)[:12]}..., the evaluation's is {fingerprint[:12]}...); audit the "
+            "model the evaluation used, or leave --audit out."
+        )
+
+
 def _findings(folder: Path) -> list[str]:
-    json_path, text_path = folder / "findings.json", folder / "findings.txt"
-    if json_path.is_file():
-        try:
-            items = json.loads(json_path.read_text(encoding="utf-8"))
-        except json.JSONDecodeError as err:
-            raise InputError(f"{json_path}: not valid JSON ({err}); run the audit again.") from err
-        if not isinstance(items, list):
-            raise InputError(f"{json_path}: must hold a list of findings; run the audit again.")
-        return [i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
-                for i in items]
-    if text_path.is_file():
-        return [line.strip() for line in text_path.read_text(encoding="utf-8").splitlines()
-                if line.strip()]
-    return []
+    json_path = folder / "findings.json"
+    try:
+        items = json.loads(json_path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as err:
+        raise InputError(f"{json_path}: not valid JSON ({err}); run the audit again.") from err
+    if not isinstance(items, list):
+        raise InputError(f"{json_path}: must hold a list of findings; run the audit again.")
+    return [i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
+            for i in items]
 
 
 def table_section(path: Path) -> Markup:
@@ -498,12 +515,17 @@ def table_section(path: Path) -> Markup:
         title, Markup(table_html(frame.head(AUDIT_ROWS_SHOWN))), note)
 
 
-def audit_section(folder: str | Path) -> Section:
-    """The audit's findings and every CSV table of its folder, in file-name order."""
+def audit_section(folder: str | Path, fingerprint: str | None = None) -> Section:
+    """The audit's findings and every CSV table of its folder, in file-name order.
+
+    The folder must hold ``findings.json`` and ``audit.json``; with ``fingerprint`` (the
+    evaluation's model fingerprint), the audit's model must be the same one.
+    """
     folder = Path(folder)
     if not folder.is_dir():
         raise InputError(f"{folder}: audit folder not found; pass the folder `casemix audit` "
                          "wrote, or leave it out.")
+    _check_audit_folder(folder, fingerprint)
     findings = _findings(folder)
     listed = (Markup("<ul>{}</ul>").format(Markup("").join(
         Markup("<li>{}</li>").format(f) for f in findings))
