@@ -166,8 +166,10 @@ def test_load_rules_reads_the_verdict_table(tmp_path):
     [
         (
             "[verdict]\nprobabilty = 0.9\n",
-            r"rules\.toml: unknown key\(s\) in \[verdict\]: probabilty",
+            r"rules\.toml: unknown key\(s\) in \[verdict\]: probabilty \(closest: "
+            r"'probability'\)\. Allowed keys: .* \(see docs/rules\.md\)",
         ),
+        ("[verdcit]\n", r"unknown top-level key\(s\) verdcit \(closest: 'verdict'\)"),
         (
             "[verdict]\nprobability = 0.5\n",
             r"rules\.toml: \[verdict\] probability must be a number",

@@ -28,6 +28,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from casemix.data.spec import closest
 from casemix.errors import RulesError
 from casemix.stats.poisson import as_observed_expected
 from casemix.stats.shrinkage import Prior, posterior
@@ -135,9 +136,10 @@ def rules_from_dict(values: Mapping[str, Any], *, source: str = "rules") -> Rule
     allowed = [f.name for f in fields(Rules)]
     unknown = sorted(set(values) - set(allowed))
     if unknown:
+        named = ", ".join(f"{key}{closest(key, allowed)}" for key in unknown)
         raise RulesError(
-            f"{source}: unknown key(s) in [verdict]: {', '.join(unknown)}. "
-            f"Allowed keys: {', '.join(allowed)}."
+            f"{source}: unknown key(s) in [verdict]: {named}. "
+            f"Allowed keys: {', '.join(allowed)} (see docs/rules.md)."
         )
     merged = {**Rules().to_dict(), **values}
     _check_values(merged, source)
@@ -176,9 +178,10 @@ def load_rules(path: str | Path) -> Rules:
         raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
     other = sorted(set(document) - {"verdict"})
     if other:
+        named = ", ".join(f"{key}{closest(key, ['verdict'])}" for key in other)
         raise RulesError(
-            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only a [verdict] table is allowed."
+            f"rules file {path}: unknown top-level key(s) {named}; "
+            "only a [verdict] table is allowed (see docs/rules.md)."
         )
     if "verdict" not in document:
         raise RulesError(
