@@ -667,3 +667,11 @@ def test_help_of_every_command_shows_an_example_using_its_own_options(command):
     listing = result.output.split("\nOptions:\n", 1)[1]
     for option in options:  # so that an example never shows an option the command lacks
         assert re.search(rf"^\s+{option}\b", listing, re.M), (command, option)
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_usage_lines_name_arguments_in_capitals(command):
+    # typer marks a required argument with braces; the name itself is a capitalised metavar
+    usage = invoke(command, "--help").output.splitlines()[0]
+    assert usage.startswith(f"Usage: casemix {command} [OPTIONS]")
+    assert not re.search(r"\{[a-z_]+\}", usage), usage

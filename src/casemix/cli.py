@@ -143,7 +143,9 @@ def _prior(value: str):
     raise typer.Exit(2)
 
 
-ExistingFile = Annotated[Path, typer.Argument(exists=True, dir_okay=False, readable=True)]
+ExistingFile = Annotated[
+    Path, typer.Argument(exists=True, dir_okay=False, readable=True, metavar="RECORDS")
+]
 SpecOption = Annotated[
     Path, typer.Option("--spec", exists=True, dir_okay=False, help="Study spec (TOML).")
 ]
@@ -436,7 +438,8 @@ def _summary(result, folder: Path, report: bool) -> None:
 @app.command()
 def report(
     folder: Annotated[
-        Path, typer.Argument(exists=True, file_okay=False, help="Evaluation folder.")
+        Path, typer.Argument(exists=True, file_okay=False, help="Evaluation folder.",
+                             metavar="FOLDER")
     ],
     out_file: Annotated[
         Path | None, typer.Option("--out", dir_okay=False, help="Report file (.html).")
