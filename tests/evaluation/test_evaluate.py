@@ -241,6 +241,30 @@ def test_a_failed_save_leaves_no_temporary_file(evaluation, tmp_path, monkeypatc
     assert (out / "programs.csv").read_bytes() == old
 
 
+def test_a_folder_of_other_files_is_refused(evaluation, tmp_path):
+    other = tmp_path / "mine"
+    other.mkdir()
+    (other / "notes.txt").write_text("my notes")
+    with pytest.raises(InputError, match=r"output folder '.*mine' is not empty \(notes.txt\) "
+                       r"and is not a casemix folder"):
+        evaluation.save(other)
+    assert sorted(p.name for p in other.iterdir()) == ["notes.txt"]
+
+
+def test_saving_again_replaces_the_folder_as_a_whole(evaluation, tmp_path):
+    out = evaluation.save(tmp_path / "out")
+    (out / "report.html").write_text("a graft-failure report of an earlier run")
+    (out / "public").mkdir()
+    (out / "public" / "programs.csv").write_text("stale")
+    (out / "cohort.csv").write_text("an input kept beside the results")
+    (out / "notes.txt").write_text("the user's own file in a casemix folder")
+    evaluation.save(out)
+    names = sorted(p.name for p in out.iterdir())
+    assert names == sorted([*FOLDER_FILES, "cohort.csv", "notes.txt"])  # stale ones gone
+    assert (out / "cohort.csv").read_text() == "an input kept beside the results"
+    assert not list(tmp_path.glob(".out.*"))  # no temporary folder left behind
+
+
 def test_empty_cohort_is_an_error(by_race, model_a):
     model, _ = model_a
     empty = r"no recipient of .*by_race\.csv is left in the evaluation cohort"

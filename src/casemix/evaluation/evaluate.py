@@ -16,7 +16,7 @@ import pandas as pd
 from scipy import stats
 
 import casemix
-from casemix._io import sha256_file, write_csv, write_json
+from casemix._io import replace_folder, sha256_file, write_csv, write_json
 from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, count_by_kind, read_records
@@ -54,6 +54,16 @@ PROGRAM_COLUMNS = [
     "p_fewer_exact",
     "casemix_factor",
 ]
+
+#: Entries of an evaluation folder that belong to one evaluation: a new save replaces them all
+#: (a stale report or public release of an earlier run never stays beside new results).
+OWNED_FILES = (
+    "programs.csv", "recipients.csv", "exclusions.csv", "corrections.csv", "followup.csv",
+    "casemix.csv", "curves.csv", "coefficients.csv", "out_of_range.csv", "run.json",
+    "report.html", "public",
+)  # fmt: skip
+#: Inputs that may sit beside the results (``casemix demo`` writes them there); kept as they are.
+INPUT_FILES = ("reference.csv", "cohort.csv", "spec.toml", "rules.toml", "model.json")
 
 CAUTIONS = (
     "This is a statistical indicator that compares observed with expected events; it is not "
@@ -112,9 +122,22 @@ class Evaluation:
     corrections: pd.DataFrame | None = None
 
     def save(self, folder: str | Path) -> Path:
-        """Write the evaluation files into ``folder`` (created if missing), each atomically."""
-        folder = Path(folder)
-        folder.mkdir(parents=True, exist_ok=True)
+        """Write the evaluation files into ``folder`` as a whole (see casemix._io.replace_folder).
+
+        A new folder is created; an existing one must be empty, an earlier evaluation folder
+        (its :data:`OWNED_FILES` are all replaced, so no stale file stays) or hold only
+        :data:`INPUT_FILES`. The files are written into a temporary folder that is then
+        swapped in.
+
+        Raises
+        ------
+        InputError
+            ``folder`` holds other files and is not an evaluation folder.
+        """
+        return replace_folder(Path(folder), self._write, owned=OWNED_FILES,
+                              allowed=INPUT_FILES)
+
+    def _write(self, folder: Path) -> None:
         tables = {
             "programs.csv": self.programs,
             "recipients.csv": self.recipients,
@@ -130,7 +153,6 @@ class Evaluation:
             if table is not None:
                 write_csv(folder / name, table)
         write_json(folder / "run.json", self.run)
-        return folder
 
 
 def coefficient_table(model: ReferenceModel, level: float = 0.95) -> pd.DataFrame:
