@@ -379,15 +379,23 @@ _SOURCES = {
 }
 
 
-def _counts(result) -> None:
-    """Print where the cut-off and window came from, and what happened to every record."""
+def _counts(result, given: str | None = None) -> None:
+    """Print where the cut-off and window came from, and what happened to every record.
+
+    ``given`` names who gave a cut-off or window that was passed in (default: the options).
+    """
     run = result.run
     sources = run.get("provenance", {})
     start, end = run["window"]
+
+    def source(key: str) -> str:
+        if given is not None and sources.get(key) == "given":
+            return given
+        return _SOURCES[key].get(sources.get(key), "?")
+
     out.print(
-        f"cut-off {run['cutoff']} (from {_SOURCES['cutoff'].get(sources.get('cutoff'), '?')}); "
-        f"window {start or 'any'} to {end or 'any'} "
-        f"(from {_SOURCES['window'].get(sources.get('window'), '?')})",
+        f"cut-off {run['cutoff']} (from {source('cutoff')}); "
+        f"window {start or 'any'} to {end or 'any'} (from {source('window')})",
         markup=False,
     )
     counts = run["counts"]
@@ -398,8 +406,8 @@ def _counts(result) -> None:
     )
 
 
-def _summary(result, folder: Path, report: bool) -> None:
-    _counts(result)
+def _summary(result, folder: Path, report: bool, given: str | None = None) -> None:
+    _counts(result, given)
     programs = result.programs
     level = f"{100 * result.rules.credible_level:g}%"
     table = Table(title="Programs (HR: shrunken hazard ratio)", title_justify="left", box=None)
@@ -574,7 +582,7 @@ def demo(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
         f"{len(cohort.frame)} cohort recipients in {len(result.programs)} programs"
     )
-    _summary(result, out_dir, True)
+    _summary(result, out_dir, True, given="the demo scenario")
 
 
 def main() -> None:
