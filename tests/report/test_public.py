@@ -33,3 +33,14 @@ def test_public_exclusion_counts_carry_no_record_values(evaluation_folder, tmp_p
     out = write_public_tables(evaluation_folder, tmp_path / "public", 2)
     text = (out / "exclusions_by_reason.csv").read_text()
     assert "2021-01-02" not in text and "2025-08-31" not in text
+
+
+def test_corrections_are_published_as_counts_per_kind(corrections_folder, tmp_path):
+    out = write_public_tables(corrections_folder, tmp_path / "public", 2)
+    counts = pd.read_csv(out / "corrections_by_kind.csv", dtype=str)
+    # hand-counted from the four lines above; a record's recipient id is never published
+    assert counts.to_dict("list") == {
+        "correction": ["event_after_last_seen", "event_after_cutoff", "last_seen_after_cutoff"],
+        "records": ["2", "<2", "<2"]}
+    assert "C2" not in (out / "corrections_by_kind.csv").read_text()
+
