@@ -634,6 +634,16 @@ def test_audit_writes_its_folder(demo_dir, network, tmp_path):
     assert (facts["bootstrap"], facts["seed"], facts["cohort_recipients"]) == (20, 1, cohort)
 
 
+def test_audit_bootstrap_below_its_real_minimum_is_refused_before_any_work(demo_dir, tmp_path):
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--cutoff", COHORT_CUTOFF,
+                    "--bootstrap", 0, "--out", tmp_path / "audit")
+    assert_exit(result, 2, "--bootstrap", r"greater than or equal to 2")
+    assert not (tmp_path / "audit").exists()
+    help_text = invoke("audit", "--help").output
+    assert "at least 2" in help_text
+
+
 def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
     result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",
