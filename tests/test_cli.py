@@ -278,13 +278,19 @@ def test_check_missing_file_is_a_usage_error_naming_it(demo_dir, tmp_path):
     assert_exit(result, 2, "nowhere.csv", "does not exist")
 
 
-def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
-    def spoil(frame):
+def _setting(*cells: tuple[int, object, str]):
+    """An edit for _extract that writes each (row, column(s), value) into a copy."""
+    def edit(frame):
         frame = frame.copy()
-        frame.loc[3, "transplant_date"] = "2023-02-30"
-        frame.loc[7, "transplant_date"] = "next spring"
+        for row, column, value in cells:
+            frame.loc[row, column] = value
         return frame
 
+    return edit
+
+
+def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
+    spoil = _setting((3, "transplant_date", "2023-02-30"), (7, "transplant_date", "next spring"))
     path = _extract(demo_dir, tmp_path, "dates.csv", spoil)
     result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF)
     assert_exit(result, 0, "120 records read, 118 kept, 2 excluded",
@@ -292,11 +298,7 @@ def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
 
 
 def test_check_without_a_cutoff_says_what_it_skipped_and_flags_future_dates(demo_dir, tmp_path):
-    def future(frame):
-        frame = frame.copy()
-        frame.loc[4, ["transplant_date", "last_seen_date"]] = "2099-03-01"
-        return frame
-
+    future = _setting((4, ["transplant_date", "last_seen_date"], "2099-03-01"))
     path = _extract(demo_dir, tmp_path, "future.csv", future)
     result = invoke("check", path, "--spec", demo_dir / "spec.toml")
     assert_exit(result, 0, "120 records read, 119 kept, 1 excluded",
@@ -306,12 +308,7 @@ def test_check_without_a_cutoff_says_what_it_skipped_and_flags_future_dates(demo
 
 
 def test_check_against_a_model_lists_every_problem_at_once(demo_dir, tmp_path):
-    def unseen(frame):
-        frame = frame.copy()
-        frame.loc[2, "recipient_sex"] = "x"
-        frame.loc[6, "donor_type"] = "domino"
-        return frame
-
+    unseen = _setting((2, "recipient_sex", "x"), (6, "donor_type", "domino"))
     path = _extract(demo_dir, tmp_path, "levels.csv", unseen)
     result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF,
                     "--model", demo_dir / "model.json")
