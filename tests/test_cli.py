@@ -41,6 +41,7 @@ DEMO_FILES = [
 EVALUATION_FILES = ["programs.csv", "recipients.csv", "exclusions.csv", "run.json"]
 COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit", "monitor"]
 REFERENCE_CUTOFF, COHORT_CUTOFF = "2022-12-31", "2025-06-30"
+CHECK_SHOWN = 20  # excluded records `casemix check` prints (the rest go to --out)
 
 
 def invoke(*args: object) -> Result:
@@ -193,6 +194,22 @@ def test_demo_tells_the_stories_it_was_built_with(demo_dir):
     assert programs.loc["LV05", "verdict"] == "excess"
 
 
+def test_demo_report_and_run_show_the_planted_corrections(demo_dir, demo_run, network):
+    planted = network.planted[(network.planted["role"] == "cohort")
+                              & (network.planted["handling"] == "kept, warned")]
+    programs = network.cohort.set_index("recipient_id").loc[planted["recipient_id"], "program"]
+    run = json.loads((demo_dir / "run.json").read_text(encoding="utf-8"))
+    assert run["counts"]["corrected"] == len(planted) == 4
+    assert "4 kept with a correction (corrections.csv)" in demo_run[1].output
+    rows = html_rows(demo_dir / "report.html")
+    header = next(r for r in rows if "Records corrected" in r)
+    total = header.index("Records corrected")
+    body = rows[rows.index(header) + 1:]
+    body = body[:next(i for i, r in enumerate(body) if r[0] not in PROGRAMS)]
+    shown = {r[0]: int(r[total]) for r in body}
+    assert shown == programs.value_counts().to_dict()
+
+
 def test_demo_into_an_existing_file_is_a_usage_error(tmp_path):
     target = tmp_path / "taken"
     target.write_text("not a folder\n")
@@ -266,17 +283,78 @@ def test_check_missing_file_is_a_usage_error_naming_it(demo_dir, tmp_path):
     assert_exit(result, 2, "nowhere.csv", "does not exist")
 
 
-def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
-    def spoil(frame):
+def _setting(*cells: tuple[int, object, str]):
+    """An edit for _extract that writes each (row, column(s), value) into a copy."""
+    def edit(frame):
         frame = frame.copy()
-        frame.loc[3, "transplant_date"] = "2023-02-30"
-        frame.loc[7, "transplant_date"] = "next spring"
+        for row, column, value in cells:
+            frame.loc[row, column] = value
         return frame
 
+    return edit
+
+
+def test_check_excludes_bad_dates_and_says_why(demo_dir, tmp_path):
+    spoil = _setting((3, "transplant_date", "2023-02-30"), (7, "transplant_date", "next spring"))
     path = _extract(demo_dir, tmp_path, "dates.csv", spoil)
     result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF)
     assert_exit(result, 0, "120 records read, 118 kept, 2 excluded",
                 "'2023-02-30' is not a date", "'next spring' is not a date")
+
+
+def test_check_without_a_cutoff_says_what_it_skipped_and_flags_future_dates(demo_dir, tmp_path):
+    future = _setting((4, ["transplant_date", "last_seen_date"], "2099-03-01"))
+    path = _extract(demo_dir, tmp_path, "future.csv", future)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml")
+    assert_exit(result, 0, "120 records read, 119 kept, 1 excluded",
+                r"transplant_date 2099-03-01 is after today",
+                r"not checked: no cut-off given \(--cutoff, or \[analysis\] cutoff")
+    assert count_table(result.output, "Excluded, by reason") == {"date after today": 1}
+
+
+def test_check_against_a_model_lists_every_problem_at_once(demo_dir, tmp_path):
+    unseen = _setting((2, "recipient_sex", "x"), (6, "donor_type", "domino"))
+    path = _extract(demo_dir, tmp_path, "levels.csv", unseen)
+    result = invoke("check", path, "--spec", demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF,
+                    "--model", demo_dir / "model.json")
+    assert_exit(result, 1, r"covariate recipient_sex .*'x' in row 3",
+                r"covariate donor_type .*'domino' in row 7", "fit the reference model again",
+                "not usable")
+    fine = invoke("check", _extract(demo_dir, tmp_path, "fine.csv"), "--spec",
+                  demo_dir / "spec.toml", "--cutoff", COHORT_CUTOFF, "--model",
+                  demo_dir / "model.json")
+    assert_exit(fine, 0, "The extract is usable")
+    assert "not checked: no model" not in fine.output
+
+
+def test_check_warns_above_the_exclusion_share_and_writes_every_list(demo_dir, network,
+                                                                     tmp_path):
+    # The cohort's planted rows plus a window of one year: most transplants fall outside it.
+    out = tmp_path / "checked"
+    result = invoke("check", demo_dir / "cohort.csv", "--spec", demo_dir / "spec.toml",
+                    "--cutoff", COHORT_CUTOFF, "--from", "2024-01-01", "--to", "2024-12-31",
+                    "--out", out)
+    assert_exit(result, 0, r"excluded \(\d+\.\d%\)", r"warning: \d+ of \d+ records \(\d+\.\d%\) "
+                r"are excluded, more than 20%", "transplanted outside the cohort window",
+                "usable, with")
+    exclusions = pd.read_csv(out / "exclusions.csv")
+    n_read = len(network.cohort)
+    before = (network.cohort["transplant_date"] < "2024-01-01").sum()
+    assert len(exclusions) > CHECK_SHOWN and len(exclusions) >= before  # the full list
+    assert sum(count_table(result.output, "Excluded, by reason").values()) == len(exclusions)
+    corrections = pd.read_csv(out / "corrections.csv")
+    assert f"{n_read} records read, {n_read - len(exclusions)} kept" in result.output
+    assert set(corrections.columns) == {"row", "recipient", "program", "kind"}
+
+
+def test_check_notes_a_reference_level_that_does_not_occur(demo_dir, tmp_path):
+    spec = tmp_path / "spec.toml"
+    text = (demo_dir / "spec.toml").read_text(encoding="utf-8")
+    spec.write_text(text.replace('reference = "deceased"', 'reference = "Deceased"'))
+    result = invoke("check", _extract(demo_dir, tmp_path, "c.csv"), "--spec", spec,
+                    "--cutoff", COHORT_CUTOFF)
+    assert_exit(result, 0, r"covariate donor_type .*the reference level 'Deceased' declared "
+                r"in the spec does not occur")
 
 
 def test_check_bad_cutoff_is_a_usage_error(demo_dir):
@@ -314,6 +392,32 @@ def test_fit_unknown_outcome_is_named(demo_dir, tmp_path):
                     "--outcome", "graft_survival", "--horizon", 365,
                     "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
     assert_exit(result, 1, "'graft_survival'", "graft_failure, graft_failure_death_censored, death")
+    assert not (tmp_path / "model.json").exists()
+
+
+def test_fit_takes_the_horizon_from_the_spec_and_counts_add_up(demo_dir, network, tmp_path):
+    out = tmp_path / "model.json"
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_failure", "--cutoff", REFERENCE_CUTOFF,
+                    "--from", "2019-01-01", "--out", out)
+    assert_exit(result, 0, r"at 365 days \(from the spec's \[analysis\] horizon_days\)")
+    counts = re.search(r"(\d+) records read: (\d+) used, (\d+) excluded \((\d+) by the record "
+                       r"checks, (\d+) transplanted after the cut-off 2022-12-31 or outside the "
+                       r"window 2019-01-01 to any\)", result.output)
+    read, used, excluded, checks, window = (int(g) for g in counts.groups())
+    assert read == len(network.reference) and read == used + excluded
+    assert excluded == checks + window and window > 0
+    # the generator's own dates: transplants before 2019 (none of them planted ones)
+    early = (network.reference["transplant_date"] < "2019-01-01").sum()
+    assert early - checks <= window <= early  # some early ones fail a record check first
+
+
+def test_fit_refuses_a_horizon_the_reference_follow_up_does_not_reach(demo_dir, tmp_path):
+    result = invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                    "--outcome", "graft_failure", "--horizon", 5000,
+                    "--cutoff", REFERENCE_CUTOFF, "--out", tmp_path / "model.json")
+    assert_exit(result, 1, r"cannot support a horizon of 5000 days: its longest follow-up is "
+                r"\d+ days and none of its \d+ recipients was followed to day 5000")
     assert not (tmp_path / "model.json").exists()
 
 
@@ -367,6 +471,43 @@ def test_evaluate_writes_the_files_with_the_chosen_prior(demo_dir, tmp_path, pri
     assert run["cutoff"] == COHORT_CUTOFF
     programs = pd.read_csv(out / "programs.csv")
     assert sorted(programs["program"]) == PROGRAMS
+
+
+def test_evaluate_says_where_the_cut_off_and_window_came_from_and_counts(demo_dir, network,
+                                                                         tmp_path):
+    out = tmp_path / "results"
+    result = _evaluate(demo_dir, out)
+    assert_exit(result, 0, r"cut-off 2025-06-30 \(from --cutoff\); window 2022-01-01 to "
+                r"2024-12-31 \(from --from/--to\)")
+    counts = json.loads((out / "run.json").read_text(encoding="utf-8"))["counts"]
+    assert (f"{counts['read']} records read: {counts['kept']} kept, {counts['excluded']} "
+            f"excluded (exclusions.csv), {counts['corrected']} kept with a correction") in (
+        result.output)
+    assert counts["read"] == len(network.cohort) == counts["kept"] + counts["excluded"]
+    # The planted corrections of the demo cohort (the generator's record), kept and listed.
+    planted = network.planted[(network.planted["role"] == "cohort")
+                              & (network.planted["handling"] == "kept, warned")]
+    corrections = pd.read_csv(out / "corrections.csv", dtype={"recipient": str})
+    assert set(corrections["recipient"]) == set(planted["recipient_id"])
+    assert counts["corrected"] == len(planted) == 4
+    bare = invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                  "--cutoff", COHORT_CUTOFF, "--no-report", "--out", tmp_path / "bare")
+    assert_exit(bare, 0, r"window any to any \(from no window given: every transplant\)")
+
+
+def test_evaluate_warns_when_one_reason_excludes_a_large_share(demo_dir, tmp_path):
+    result = _evaluate(demo_dir, tmp_path / "r", "--from", "2024-01-01")
+    assert_exit(result, 0, r"warning: .*cohort.csv: \d+ of \d+ records \(\d+\.\d%\) are "
+                r"excluded as \"transplanted outside the cohort window\", more than 20%")
+
+
+def test_evaluate_cut_off_before_the_window_is_said_in_iso_dates(demo_dir, tmp_path):
+    result = invoke("evaluate", demo_dir / "cohort.csv", "--model", demo_dir / "model.json",
+                    "--cutoff", "2021-01-01", "--from", "2022-01-01", "--no-report",
+                    "--out", tmp_path / "r")
+    assert_exit(result, 1, r"the cut-off 2021-01-01 precedes the cohort window, which starts "
+                r"2022-01-01")
+    assert "datetime" not in result.output
 
 
 def test_evaluate_fixed_prior_gives_the_conjugate_posterior(demo_dir, tmp_path):
@@ -519,6 +660,16 @@ def test_audit_of_an_evaluation_with_user_rules_agrees_with_it(demo_dir, tmp_pat
     assert_exit(both, 1, "give either an evaluation folder or rules")
 
 
+def test_audit_bootstrap_below_its_real_minimum_is_refused_before_any_work(demo_dir, tmp_path):
+    result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
+                    "--cohort", demo_dir / "cohort.csv", "--cutoff", COHORT_CUTOFF,
+                    "--bootstrap", 0, "--out", tmp_path / "audit")
+    assert_exit(result, 2, "--bootstrap", r"greater than or equal to 2")
+    assert not (tmp_path / "audit").exists()
+    help_text = invoke("audit", "--help").output
+    assert "at least 2" in help_text
+
+
 def test_audit_bad_cutoff_is_a_usage_error(demo_dir, tmp_path):
     result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", "June 2025",
@@ -639,3 +790,11 @@ def test_report_states_the_outcome_definition(demo_dir):
     assert run["outcome_definition"].endswith("(a death counts as an event: all-cause)")
     html = (demo_dir / "report.html").read_text(encoding="utf-8")
     assert "Outcome: graft failure = the earliest of graft_loss_date" in html
+
+
+@pytest.mark.parametrize("command", COMMANDS)
+def test_usage_lines_name_arguments_in_capitals(command):
+    # typer marks a required argument with braces; the name itself is a capitalised metavar
+    usage = invoke(command, "--help").output.splitlines()[0]
+    assert usage.startswith(f"Usage: casemix {command} [OPTIONS]")
+    assert not re.search(r"\{[a-z_]+\}", usage), usage

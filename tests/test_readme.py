@@ -212,3 +212,21 @@ def test_own_extract_command_runs_on_the_demo_files(own_extract_runs, demo_folde
     assert done.returncode == 0, done.stdout + done.stderr
     for product in _products(command):
         assert (demo_folder[0] / product).is_file(), product
+
+
+def python_blocks(text: str) -> list[str]:
+    return re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
+
+
+def test_python_section_evaluates_audits_and_reports(demo_folder, tmp_path):
+    (block,) = python_blocks(section("Using it on your own extract"))
+    assert "write_report(" in block and "run_audit(" in block
+    folder, done = demo_folder
+    assert done.returncode == 0, done.stderr
+    for name in ("reference.csv", "cohort.csv", "spec.toml", "rules.toml"):
+        (tmp_path / name).write_bytes((folder / name).read_bytes())
+    ran = run([sys.executable, "-c", block], tmp_path)
+    assert ran.returncode == 0, ran.stderr
+    for product in ("results/programs.csv", "results/corrections.csv", "audit/findings.json"):
+        assert (tmp_path / product).is_file(), product
+    assert 'id="audit"' in (tmp_path / "results" / "report.html").read_text(encoding="utf-8")

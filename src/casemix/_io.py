@@ -5,7 +5,9 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import shutil
 import tempfile
+from collections.abc import Callable, Iterable
 from pathlib import Path
 from typing import Any
 
@@ -63,3 +65,60 @@ def sha256_file(path: str | Path) -> str:
         for chunk in iter(lambda: source.read(1 << 20), b""):
             digest.update(chunk)
     return digest.hexdigest()
+
+
+def replace_folder(folder: str | Path, write: Callable[[Path], None], *, owned: Iterable[str],
+                   allowed: Iterable[str] = ()) -> Path:
+    """Write a folder's files as a whole: into a temporary sibling folder, then swap it in.
+
+    ``write(tmp)`` writes every file into ``tmp``. An existing ``folder`` is accepted when it
+    is empty, holds ``run.json`` (written by casemix), or holds only names in ``owned`` or
+    ``allowed``; otherwise it is refused, so that files of another kind are never mixed with
+    new results. On the swap, every ``owned`` entry of the old folder (including stale ones
+    the new run did not write, such as a report of another outcome) is replaced by the new
+    folder's; other entries (inputs kept beside the results) are moved over unchanged. A
+    failed ``write`` leaves the old folder as it was and no temporary folder behind.
+
+    Raises
+    ------
+    InputError
+        ``folder`` is a file, or a non-empty folder that casemix did not write.
+    """
+    from casemix.errors import InputError
+
+    folder = Path(folder).absolute()
+    owned, allowed = set(owned), set(allowed)
+    if folder.exists() and not folder.is_dir():
+        raise InputError(f"output folder '{folder}' is a file; choose a folder.")
+    present = sorted(p.name for p in folder.iterdir()) if folder.is_dir() else []
+    foreign = [n for n in present if n not in owned | allowed]
+    if foreign and "run.json" not in present:
+        shown = ", ".join(foreign[:5]) + (" ..." if len(foreign) > 5 else "")
+        raise InputError(
+            f"output folder '{folder}' is not empty ({shown}) and is not a casemix folder "
+            "(it has no run.json); choose a new or empty folder so that results are not "
+            "mixed with other files."
+        )
+    folder.parent.mkdir(parents=True, exist_ok=True)
+    new = Path(tempfile.mkdtemp(dir=folder.parent, prefix=f".{folder.name}.", suffix=".new"))
+    try:
+        write(new)
+        for name in present:
+            if name not in owned:  # inputs kept beside the results move over unchanged
+                os.replace(folder / name, new / name)
+        if folder.is_dir():
+            old = Path(tempfile.mkdtemp(dir=folder.parent, prefix=f".{folder.name}.",
+                                        suffix=".old"))
+            os.replace(folder, old / folder.name)
+            os.replace(new, folder)
+            shutil.rmtree(old)
+        else:
+            os.replace(new, folder)
+    except BaseException:
+        if new.is_dir():
+            for name in present:  # give back what was moved before the failure
+                if name not in owned and (new / name).exists():
+                    os.replace(new / name, folder / name)
+            shutil.rmtree(new, ignore_errors=True)
+        raise
+    return folder

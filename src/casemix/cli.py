@@ -155,7 +155,9 @@ def _prior(value: str):
     raise typer.Exit(2)
 
 
-ExistingFile = Annotated[Path, typer.Argument(exists=True, dir_okay=False, readable=True)]
+ExistingFile = Annotated[
+    Path, typer.Argument(exists=True, dir_okay=False, readable=True, metavar="RECORDS")
+]
 SpecOption = Annotated[
     Path, typer.Option("--spec", exists=True, dir_okay=False, help="Study spec (TOML).")
 ]
@@ -179,28 +181,53 @@ def check(
     records: ExistingFile,
     spec: SpecOption,
     cutoff: CutoffOption = None,
+    window_from: FromOption = None,
+    window_to: ToOption = None,
+    model: Annotated[
+        Path | None,
+        typer.Option("--model", exists=True, dir_okay=False,
+                     help="Also check against a fitted reference model (.json)."),
+    ] = None,
+    out_dir: Annotated[
+        Path | None,
+        typer.Option("--out", file_okay=False,
+                     help="Write every exclusion and correction (CSV) into this folder."),
+    ] = None,
 ) -> None:
     """Validate an extract: what would be excluded and why, per reason and per program.
 
     Exit code 0 when the extract is usable, 1 when it is not (missing columns, duplicate
-    recipient ids, unreadable file).
+    recipient ids, unreadable file, covariates the --model cannot encode).
 
     Example: casemix check cohort.csv --spec spec.toml --cutoff 2025-06-30
+    --from 2023-01-01 --to 2024-12-31 --model model.json --out checked
     """
+    from casemix._io import write_csv
+    from casemix.data.check import check_extract
     from casemix.data.records import read_records
+    from casemix.model.reference import ReferenceModel
 
+    cut = _date(cutoff, "--cutoff")
+    window = (_date(window_from, "--from"), _date(window_to, "--to"))
     with _guarded():
-        result = read_records(records, spec, cutoff=_date(cutoff, "--cutoff"))
+        reference = None if model is None else ReferenceModel.load(model)
+        data = read_records(records, spec, cutoff=cut)
+        result = check_extract(data, window=window, model=reference)
+        if out_dir is not None:
+            write_csv(out_dir / "exclusions.csv", result.exclusions)
+            write_csv(out_dir / "corrections.csv", result.corrections)
+    excluded = len(result.exclusions)
     out.print(
-        f"{records}: {plural(result.n_read, 'record')} read, {len(result.frame)} kept, "
-        f"{len(result.exclusions)} excluded"
+        f"{records}: {plural(data.n_read, 'record')} read, {result.n_kept} kept, "
+        f"{excluded} excluded ({excluded / data.n_read:.1%}), "
+        f"{plural(result.corrections['row'].nunique(), 'record')} kept with a correction"
     )
-    if len(result.exclusions):
-        _print_counts("Excluded, by reason", _reason_counts(result.exclusions), "reason")
+    if excluded:
+        _print_counts("Excluded, by reason", result.by_reason, "reason")
         shown = result.exclusions[["row", "recipient", "reason"]].head(CHECK_LISTED)
         title = "Excluded records" + (
-            f" (first {CHECK_LISTED} of {len(result.exclusions)})"
-            if len(result.exclusions) > CHECK_LISTED
+            f" (first {CHECK_LISTED} of {excluded}; all in --out DIR/exclusions.csv)"
+            if excluded > CHECK_LISTED
             else ""
         )
         _print_counts(title, shown.astype(str), "reason")
@@ -212,14 +239,24 @@ def check(
             .reset_index()
         )
         _print_counts("Excluded, by program", by_program, "program")
-    if len(result.warnings):
-        _print_counts("Kept with a correction", result.warnings, "program")
-    out.print("The extract is usable.")
-
-
-def _reason_counts(exclusions: pd.DataFrame) -> pd.DataFrame:
-    kinds = exclusions["kind"].str.split("; ").explode()
-    return kinds.value_counts().rename_axis("reason").rename("records").reset_index()
+    if len(result.corrections):
+        counts = result.corrections.groupby(["program", "kind"]).size().rename("count")
+        _print_counts("Kept with a correction", counts.reset_index(), "program")
+    if data.emptied is not None and len(data.emptied):
+        _print_counts("Cells read as missing, by token", data.emptied, "token")
+    for text in result.skipped:
+        out.print(f"not checked: {text}", markup=False)
+    for text in result.warnings:
+        err.print(f"warning: {text}", markup=False)
+    if out_dir is not None:
+        out.print(f"every exclusion and correction written to {out_dir}")
+    if not result.usable:
+        for text in result.problems:
+            err.print(f"error: {text}", markup=False)
+        err.print("The extract is not usable as it is.", markup=False)
+        raise typer.Exit(1)
+    out.print("The extract is usable" + (
+        f", with {len(result.warnings)} warning(s) above." if result.warnings else "."))
 
 
 def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:
@@ -238,8 +275,12 @@ def fit(
     records: ExistingFile,
     spec: SpecOption,
     outcome: Annotated[str, typer.Option("--outcome", help="An outcome named in the spec.")],
-    horizon: Annotated[int, typer.Option("--horizon", min=1, help="Horizon in days.")],
     out_path: Annotated[Path, typer.Option("--out", dir_okay=False, help="Model file (.json).")],
+    horizon: Annotated[
+        int | None,
+        typer.Option("--horizon", min=1,
+                     help="Horizon in days (default: horizon_days in the spec's [analysis])."),
+    ] = None,
     cutoff: CutoffOption = None,
     window_from: FromOption = None,
     window_to: ToOption = None,
@@ -252,6 +293,7 @@ def fit(
     Example: casemix fit reference.csv --spec spec.toml --outcome graft_failure
     --horizon 365 --cutoff 2022-12-31 --out model.json
     """
+    from casemix.data.cohort import apply_window
     from casemix.data.records import read_records
     from casemix.model.reference import fit_reference
 
@@ -263,13 +305,28 @@ def fit(
         model = fit_reference(data, data.spec, outcome, horizon, cut, ties.value, window)
         model.save(out_path)
         step("saved")
+        excluded, _ = apply_window(data, model.cutoff, model.window)
     fit_ = model.fit
+    source = "--horizon" if horizon is not None else "the spec's [analysis] horizon_days"
     out.print(
-        f"fitted {outcome} at {horizon} days on {plural(fit_.n, 'recipient')} with "
-        f"{plural(fit_.n_events, 'event')} ({plural(len(fit_.names), 'term')}, concordance "
-        f"{model.concordance:.3f}); {plural(len(data.exclusions), 'record')} excluded"
+        f"fitted {outcome} at {model.horizon_days} days (from {source}) on "
+        f"{plural(fit_.n, 'recipient')} with {plural(fit_.n_events, 'event')} "
+        f"({plural(len(fit_.names), 'term')}, concordance "
+        f"{model.concordance:.3f})",
+        markup=False,
+    )
+    out.print(
+        f"{plural(data.n_read, 'record')} read: {fit_.n} used, {len(excluded)} excluded "
+        f"({len(data.exclusions)} by the record checks, "
+        f"{len(excluded) - len(data.exclusions)} transplanted after the cut-off "
+        f"{model.cutoff.isoformat()} or outside the window {_window_words(model.window)})"
     )
     out.print(f"model written to {out_path}")
+
+
+def _window_words(window) -> str:
+    start, end = (None if d is None else d.isoformat() for d in window)
+    return f"{start or 'any'} to {end or 'any'}"
 
 
 @app.command()
@@ -335,7 +392,43 @@ def _write_report(folder: Path, out_file: Path | None = None, suppress_below=Non
     return write_report(folder, out_file, suppress_below=suppress_below, audit_folder=audit)
 
 
-def _summary(result, folder: Path, report: bool) -> None:
+_SOURCES = {
+    "cutoff": {"given": "--cutoff", "records": "the records", "spec": "the [analysis] "
+               "cutoff of the spec stored in the model"},
+    "window": {"given": "--from/--to", "spec": "the [analysis] cohort_from/cohort_to of the "
+               "spec stored in the model", "none": "no window given: every transplant"},
+}
+
+
+def _counts(result, given: str | None = None) -> None:
+    """Print where the cut-off and window came from, and what happened to every record.
+
+    ``given`` names who gave a cut-off or window that was passed in (default: the options).
+    """
+    run = result.run
+    sources = run.get("provenance", {})
+    start, end = run["window"]
+
+    def source(key: str) -> str:
+        if given is not None and sources.get(key) == "given":
+            return given
+        return _SOURCES[key].get(sources.get(key), "?")
+
+    out.print(
+        f"cut-off {run['cutoff']} (from {source('cutoff')}); "
+        f"window {start or 'any'} to {end or 'any'} (from {source('window')})",
+        markup=False,
+    )
+    counts = run["counts"]
+    out.print(
+        f"{counts['read']} records read: {counts['kept']} kept, {counts['excluded']} excluded "
+        f"(exclusions.csv), {counts['corrected']} kept with a correction (corrections.csv)",
+        markup=False,
+    )
+
+
+def _summary(result, folder: Path, report: bool, given: str | None = None) -> None:
+    _counts(result, given)
     programs = result.programs
     level = f"{100 * result.rules.credible_level:g}%"
     from rich.table import Table
@@ -376,7 +469,8 @@ def _summary(result, folder: Path, report: bool) -> None:
 @app.command()
 def report(
     folder: Annotated[
-        Path, typer.Argument(exists=True, file_okay=False, help="Evaluation folder.")
+        Path, typer.Argument(exists=True, file_okay=False, help="Evaluation folder.",
+                             metavar="FOLDER")
     ],
     out_file: Annotated[
         Path | None, typer.Option("--out", dir_okay=False, help="Report file (.html).")
@@ -416,7 +510,9 @@ def audit(
         Path | None,
         typer.Option("--cohort", exists=True, dir_okay=False, help="Evaluation cohort records."),
     ] = None,
-    bootstrap: Annotated[int, typer.Option("--bootstrap", min=0, help="Bootstrap refits.")] = 200,
+    bootstrap: Annotated[
+        int, typer.Option("--bootstrap", min=2, help="Bootstrap refits (at least 2).")
+    ] = 200,
     seed: Annotated[int, typer.Option("--seed", min=0, help="Random seed.")] = 0,
     cutoff: Annotated[
         str | None, typer.Option("--cutoff", help="Cut-off of the cohort records (YYYY-MM-DD).")
@@ -589,7 +685,7 @@ def demo(
         f"{plural(len(cohort.frame), 'cohort recipient')} in "
         f"{plural(len(result.programs), 'program')}"
     )
-    _summary(result, out_dir, True)
+    _summary(result, out_dir, True, given="the demo scenario")
     _monitor_summary(monitoring, out_dir)
 
 

@@ -192,6 +192,17 @@ def test_transform_errors(design: Design, ref: pd.DataFrame, changes: dict,
         design.strata(frame)
 
 
+def test_every_covariate_problem_is_listed_at_once(design: Design, ref: pd.DataFrame) -> None:
+    frame = _broken(ref, sex=(2, "unknown"), cold_hours=(1, None), era=(3, "middle"))
+    with pytest.raises(InputError, match=r"2 covariates cannot be encoded .*\(1\) covariate sex "
+                       r".*fit the reference model again.*\(2\) covariate cold "):
+        design.transform(frame)
+    problems = design.problems(frame)
+    assert [p.split(" ")[:2] for p in problems] == [
+        ["covariate", "sex"], ["covariate", "cold"], ["strata", "column"]]
+    assert design.problems(ref) == []
+
+
 def test_missing_column_and_exclude_policy(design: Design, ref: pd.DataFrame) -> None:
     with pytest.raises(InputError, match=r"covariate cold needs column 'cold_hours', which the "
                                          r"data lack \(closest: 'cold_hour'\)"):

@@ -153,7 +153,7 @@ EXCLUDED = {  # row -> reason, worked by hand from MESSY
     5: "last_seen_date 2022-11-30 is before the transplant date 2023-01-10",
     6: "program (column 'program') is missing",
     7: "recipient_age 120 is outside the plausible range 18 to 90",
-    8: "recipient_age (column 'recipient_age') is missing and its missing policy is \"exclude\"",
+    8: "recipient_age is missing and its missing policy is \"exclude\"",
     9: "transplanted 2025-07-02, after the cut-off 2025-06-30",
     12: "recipient id (column 'recipient_id') is missing",
     13: "recipient_age 'abc' is not a number",
@@ -204,23 +204,19 @@ def test_corrections_are_listed_and_counted(messy) -> None:
     assert frame.loc[9, "last_seen_date"] == pd.Timestamp("2023-08-15")
     # R11: last seen 2025-09-01 after the cut-off -> truncated to 2025-06-30.
     assert frame.loc[10, "last_seen_date"] == pd.Timestamp("2025-06-30")
-    # R19: death 2025-08-01 after last seen: extended, then truncated to the cut-off.
-    assert frame.loc[18, "last_seen_date"] == pd.Timestamp("2025-06-30")
+    # R19: death 2025-08-01 after the cut-off 2025-06-30: outside the complete period, so it
+    # does not lengthen follow-up past the last real contact (last seen 2025-05-01 stays).
+    assert frame.loc[18, "last_seen_date"] == pd.Timestamp("2025-05-01")
     assert messy.corrections.to_dict("list") == {
-        "row": [10, 11, 19, 19],
-        "recipient": ["R10", "R11", "R19", "R19"],
-        "program": ["LV01", "LV02", "LV02", "LV02"],
-        "kind": [
-            "event_after_last_seen",
-            "last_seen_after_cutoff",
-            "event_after_last_seen",
-            "last_seen_after_cutoff",
-        ],
+        "row": [10, 11, 19],
+        "recipient": ["R10", "R11", "R19"],
+        "program": ["LV01", "LV02", "LV02"],
+        "kind": ["event_after_last_seen", "last_seen_after_cutoff", "event_after_cutoff"],
     }
     assert messy.warnings.to_dict("list") == {
         "program": ["LV01", "LV02", "LV02"],
-        "kind": ["event_after_last_seen", "event_after_last_seen", "last_seen_after_cutoff"],
-        "count": [1, 1, 2],
+        "kind": ["event_after_last_seen", "event_after_cutoff", "last_seen_after_cutoff"],
+        "count": [1, 1, 1],
     }
     assert messy.cutoff == pd.Timestamp("2025-06-30")
 
@@ -415,3 +411,128 @@ def test_rows_read_equal_kept_plus_excluded(cells: list[dict]) -> None:
     assert excluded.isdisjoint(records.frame.index)
     assert excluded | set(records.frame.index) == set(range(len(rows)))
     assert records.exclusions["reason"].str.len().min() > 0 if excluded else True
+
+
+# --- every record accounted for (issue: an analyst's own extract) -------------------------
+
+
+def _minimal(path: Path, lines: list[str], sep: str = ",") -> Path:
+    header = ["recipient_id", "program", "transplant_date", "last_seen_date", "graft_loss_date",
+              "retransplant_date", "death_date", "recipient_age", "diabetes", "donor_type",
+              "donor_age", "bmi"]
+    path.write_text(sep.join(header) + "\n" + "\n".join(lines) + "\n", encoding="utf-8")
+    return path
+
+
+GOOD = "{id},LV01,2023-01-05,2024-02-01,,,,45,0,deceased,50,27.1"
+
+
+def test_a_date_after_today_excludes_the_record_with_its_own_reason(tmp_path: Path) -> None:
+    # Death dated 2031 with last contact on day 133: without a cut-off it would have
+    # stretched follow-up to 2031; with one it would have made a one-year survivor.
+    lines = [GOOD.format(id="A1"), "A2,LV01,2023-01-05,2023-05-18,,,2031-02-03,45,0,deceased,50,27"]
+    records = read_records(_minimal(tmp_path / "f.csv", lines), SPEC, today="2026-01-15")
+    assert records.exclusions["kind"].tolist() == ["date after today"]
+    assert records.exclusions["reason"].iloc[0] == (
+        "death_date 2031-02-03 is after today (2026-01-15); a date that cannot be true makes "
+        "the whole record doubtful")
+    assert records.n_read == len(records.frame) + len(records.exclusions) == 2
+    # The same record checked as of a later day is kept, and its event after the cut-off
+    # does not lengthen follow-up (last seen stays at the real contact).
+    later = read_records(tmp_path / "f.csv", SPEC, today="2032-01-01")
+    assert later.frame.loc[1, "last_seen_date"] == pd.Timestamp("2023-05-18")
+    assert later.corrections["kind"].tolist() == ["event_after_cutoff"]
+
+
+def test_an_event_after_the_cut_off_does_not_make_a_survivor(tmp_path: Path) -> None:
+    from casemix import build_cohort
+
+    lines = ["A2,LV01,2024-01-05,2024-05-17,,,2025-09-03,45,0,deceased,50,27"]
+    records = read_records(_minimal(tmp_path / "f.csv", lines), SPEC, today="2026-01-15")
+    cohort = build_cohort(records, "death", 365, "2025-06-30")
+    # Follow-up ends at the last contact, day 133 (date(2024, 5, 17) - date(2024, 1, 5)),
+    # not at the horizon: the death after the cut-off says nothing the data are complete for.
+    assert cohort.frame[["time", "event"]].values.tolist() == [[133.0, 0]]
+    earlier = build_cohort(records, "death", 365, "2025-01-31")  # cohort cut-off before it too
+    assert earlier.frame[["time", "event"]].values.tolist() == [[133.0, 0]]
+
+
+def test_a_stray_quote_that_merges_lines_is_refused_with_its_line(tmp_path: Path) -> None:
+    lines = [GOOD.format(id=f"A{i}") for i in range(1, 9)]
+    lines[2] = lines[2].replace(",LV01,", ',"LV01,')  # the quote opens on file line 4
+    lines[6] = lines[6].replace(",LV01,", ',LV"01,')  # and closes on line 8
+    path = _minimal(tmp_path / "q.csv", lines)
+    # Without the check the reader merged lines 4-8 into one record: 4 records, no error.
+    with pytest.raises(InputError, match=r"data row 3, starts on line 4 and its column "
+                       r"'program' runs over 5 lines: a double quote \(\"\) in or near line 4.*"
+                       r"\(4 records parsed from 8 data lines\)"):
+        read_records(path, SPEC)
+    lines[6] = GOOD.format(id="A7")  # a quote never closed
+    with pytest.raises(InputError, match=r"a double quote \(\"\) on line 4 \(data row 3\) "
+                       r"opens a field that is never closed"):
+        read_records(_minimal(tmp_path / "q.csv", lines), SPEC)
+
+
+def test_a_header_naming_a_column_twice_is_refused(tmp_path: Path) -> None:
+    path = tmp_path / "h.csv"
+    path.write_text(",".join([*HEADER, "program"]) + "\n" + GOOD.format(id="A1") + ",LV09\n")
+    with pytest.raises(InputError, match=r"the header names 'program' more than once"):
+        read_records(path, SPEC)
+
+
+def test_program_codes_equal_up_to_case_warn_and_may_be_normalised(tmp_path: Path) -> None:
+    from casemix.errors import DataWarning
+
+    lines = [GOOD.format(id="A1"), GOOD.format(id="A2").replace("LV01", "lv01"),
+             GOOD.format(id="A3").replace("LV01", "LV 01"), GOOD.format(id="A4")]
+    path = _minimal(tmp_path / "p.csv", lines)
+    with pytest.warns(DataWarning, match=r"1 program code differ.*'LV 01' and 'LV01' and "
+                      r"'lv01'.*normalise_programs = true"):
+        records = read_records(path, SPEC)
+    assert sorted(records.frame["program"].unique()) == ["LV 01", "LV01", "lv01"]
+    spec = spec_from_dict({**SPEC.to_dict(), "records": {"normalise_programs": True}})
+    merged = read_records(path, spec)
+    assert merged.frame["program"].unique().tolist() == ["LV01"]
+
+
+def test_missing_value_tokens_are_explicit_counted_and_configurable(tmp_path: Path) -> None:
+    lines = [GOOD.format(id="A1").replace(",27.1", ",NA"), GOOD.format(id="A2").replace(
+        ",27.1", ",-"), GOOD.format(id="A3").replace(",0,deceased", ",null,deceased")]
+    path = _minimal(tmp_path / "m.csv", lines)
+    records = read_records(path, SPEC)
+    assert records.emptied.to_dict("list") == {
+        "token": ["NA", "null"], "column": ["bmi", "diabetes"], "cells": [1, 1]}
+    assert records.exclusions["reason"].tolist() == ["bmi '-' is not a number"]
+    spec = spec_from_dict({**SPEC.to_dict(), "records": {"missing": ["", "-", "NA"]}})
+    custom = read_records(path, spec)
+    assert custom.emptied["token"].tolist() == ["-", "NA"]
+    assert custom.exclusions["reason"].tolist() == ["diabetes 'null' is not binary"]
+
+
+def test_semicolons_are_detected_and_delimiter_and_decimal_comma_are_read(tmp_path: Path):
+    lines = ["A1;LV01;2023-01-05;2024-02-01;;;;45;0;deceased;50;27,5"]
+    path = _minimal(tmp_path / "s.csv", lines, sep=";")
+    with pytest.raises(InputError, match=r"separated by ';'.*Set delimiter = \";\" in the "
+                       r"\[records\] table"):
+        read_records(path, SPEC)
+    spec = spec_from_dict({**SPEC.to_dict(), "records": {"delimiter": ";", "decimal": ","}})
+    records = read_records(path, spec)
+    assert records.frame["bmi"].tolist() == [27.5]
+    assert spec_from_dict(spec.to_dict()) == spec
+
+
+def test_messages_name_the_file_column_and_the_covariate_in_brackets(tmp_path: Path) -> None:
+    spec = spec_from_dict({**SPEC.to_dict(), "covariates": [
+        {"name": "age", "column": "recipient_age", "kind": "numeric", "lower": 18}]})
+    lines = [GOOD.format(id="A1").replace(",45,", ",12,"),
+             GOOD.format(id="A2").replace(",45,", ",,")]
+    records = read_records(_minimal(tmp_path / "c.csv", lines), spec)
+    assert records.exclusions["reason"].tolist() == [
+        "recipient_age (age) 12 is outside the plausible range 18 to inf",
+        "recipient_age (age) is missing and its missing policy is \"exclude\""]
+
+
+def test_records_have_a_short_repr(messy) -> None:
+    text = repr(messy)
+    assert text.startswith("<Records '") and text.endswith(
+        ": 19 read, 7 kept, 12 excluded, 3 corrections; cut-off 2025-06-30>")

@@ -38,9 +38,11 @@ DESIGN_COLUMNS = [
     "program", "recipients", "observed", "expected", "oe_ratio", "hr_mean", "hr_lower",
     "hr_upper", "p_above", "p_below", "verdict", "observed_survival", "expected_survival",
 ]  # fmt: skip
-# DEVELOPERS.md, "Evaluation folder", plus out_of_range.csv (Evaluation.out_of_range).
+# DEVELOPERS.md, "Evaluation folder", plus out_of_range.csv (Evaluation.out_of_range) and
+# corrections.csv (DESIGN.md, "outputs").
 FOLDER_FILES = [
-    "casemix.csv", "coefficients.csv", "curves.csv", "exclusions.csv", "followup.csv",
+    "casemix.csv", "coefficients.csv", "corrections.csv", "curves.csv", "exclusions.csv",
+    "followup.csv",
     "out_of_range.csv", "programs.csv", "recipients.csv", "run.json",
 ]  # fmt: skip
 
@@ -174,7 +176,8 @@ def test_run_facts(evaluation, by_race, model_a):
     assert run["inputs"]["records"]["sha256"] == hashlib.sha256(by_race.read_bytes()).hexdigest()
     assert run["inputs"]["model"]["sha256"] == hashlib.sha256(path.read_bytes()).hexdigest()
     assert run["model"]["fingerprint"] == model.fingerprint
-    assert run["counts"] == {"read": 432, "kept": 431, "excluded": 1}
+    assert run["counts"] == {"read": 432, "kept": 431, "excluded": 1, "corrected": 0,
+                             "corrections": {}, "excluded_by_reason": {"missing age": 1}}
     json.dumps(run, allow_nan=False)  # plain JSON, no NaN
 
 
@@ -236,6 +239,30 @@ def test_a_failed_save_leaves_no_temporary_file(evaluation, tmp_path, monkeypatc
         evaluation.save(out)
     assert sorted(p.name for p in out.iterdir()) == FOLDER_FILES
     assert (out / "programs.csv").read_bytes() == old
+
+
+def test_a_folder_of_other_files_is_refused(evaluation, tmp_path):
+    other = tmp_path / "mine"
+    other.mkdir()
+    (other / "notes.txt").write_text("my notes")
+    with pytest.raises(InputError, match=r"output folder '.*mine' is not empty \(notes.txt\) "
+                       r"and is not a casemix folder"):
+        evaluation.save(other)
+    assert sorted(p.name for p in other.iterdir()) == ["notes.txt"]
+
+
+def test_saving_again_replaces_the_folder_as_a_whole(evaluation, tmp_path):
+    out = evaluation.save(tmp_path / "out")
+    (out / "report.html").write_text("a graft-failure report of an earlier run")
+    (out / "public").mkdir()
+    (out / "public" / "programs.csv").write_text("stale")
+    (out / "cohort.csv").write_text("an input kept beside the results")
+    (out / "notes.txt").write_text("the user's own file in a casemix folder")
+    evaluation.save(out)
+    names = sorted(p.name for p in out.iterdir())
+    assert names == sorted([*FOLDER_FILES, "cohort.csv", "notes.txt"])  # stale ones gone
+    assert (out / "cohort.csv").read_text() == "an input kept beside the results"
+    assert not list(tmp_path.glob(".out.*"))  # no temporary folder left behind
 
 
 def test_empty_cohort_is_an_error(by_race, model_a):

@@ -7,6 +7,7 @@ as a step (never lifelines' interpolating predict functions; REFERENCE_CHECKS Co
 
 from __future__ import annotations
 
+import dataclasses
 from pathlib import Path
 
 import numpy as np
@@ -172,11 +173,14 @@ def test_refuses_a_different_outcome(model_b):
 
 
 def test_refuses_times_past_the_reference_follow_up(folder, rossi, model_b):
-    # The reference is complete only to week 30 (cut-off 210 days after the transplants),
-    # yet fitted with a 364-day horizon: its baseline is unknown past day 210.
+    # The reference is complete only to week 30 (cut-off 210 days after the transplants):
+    # fit_reference refuses a 364-day horizon, so the model is fitted at 210 days and then
+    # given a 364-day horizon, as a model file written before that check could carry.
     reference = rossi[rossi["fin"] == 0]
     records = _read(folder, "short_ref", reference, rr.by(reference, "fin"), rr.MODEL_B)
-    short = _fit(records, cutoff="2020-08-03")
+    with pytest.raises(InputError, match=r"cannot support a horizon of 364 days"):
+        _fit(records, cutoff="2020-08-03")
+    short = dataclasses.replace(_fit(records, 210, cutoff="2020-08-03"), horizon_days=364)
     assert short.fit.baselines[0].last_time == 210.0
     _, cohort_records, _ = model_b
     beyond = r"beyond the last follow-up time of the fitting data \(210\)"

@@ -144,7 +144,8 @@ def test_baseline_is_the_breslow_step_at_the_means(full_model, rossi):
 
 @pytest.mark.parametrize(
     ("horizon_days", "cutoff"),
-    [(26 * 7, rr.ROSSI_CUTOFF), (rr.HORIZON_DAYS, "2020-07-06")],  # 2020-07-06 = tx + 182 d
+    # 2020-07-06 = tx + 182 d; the horizon may not outrun the follow-up the cut-off leaves
+    [(26 * 7, rr.ROSSI_CUTOFF), (26 * 7, "2020-07-06")],
     ids=["horizon", "cutoff"],
 )
 def test_horizon_and_cutoff_truncate_the_reference(full_records, rossi, horizon_days, cutoff):
@@ -204,6 +205,21 @@ def test_fit_reference_errors_name_the_fix(full_records):
         fit_reference(full_records, outcome=rr.OUTCOME, horizon_days=364, cutoff="June 2021")
     with pytest.raises(SpecError, match=r"has no outcome 'arest' \(closest: 'arrest'"):
         fit_reference(full_records, outcome="arest", horizon_days=364, cutoff=rr.ROSSI_CUTOFF)
+
+
+def test_a_horizon_beyond_the_reference_follow_up_is_refused(full_records):
+    # rossi follows everyone 52 weeks (lifelines.datasets): 364 days is the longest time.
+    with pytest.raises(InputError, match=r"cannot support a horizon of 400 days: its longest "
+                       r"follow-up is 364 days and none of its 432 recipients"):
+        fit_reference(full_records, outcome=rr.OUTCOME, horizon_days=400,
+                      cutoff=rr.ROSSI_CUTOFF)
+
+
+def test_a_model_has_a_short_repr(full_model):
+    text = repr(full_model)
+    assert text.startswith(f"<ReferenceModel arrest at 364 days: 7 terms, 432 recipients, "
+                           f"114 events, cut-off {rr.ROSSI_CUTOFF}")  # rossi: 114 arrests
+    assert len(text) < 200
 
 
 def test_fingerprint_follows_the_fitting_data(folder, rossi, full_records, full_model):

@@ -13,6 +13,7 @@ statsmodels, not lifelines, so that the report tests run in the plain install to
 from __future__ import annotations
 
 import json
+import shutil
 from collections import Counter
 from html.parser import HTMLParser
 from pathlib import Path
@@ -205,6 +206,19 @@ def write_evaluation_folder(folder: Path, programs: dict | None = None, seed: in
 def evaluation_folder(tmp_path_factory: pytest.TempPathFactory) -> Path:
     """The default folder: six programs, one of them small (8 recipients)."""
     return write_evaluation_folder(tmp_path_factory.mktemp("evaluation"))
+
+
+@pytest.fixture
+def corrections_folder(evaluation_folder, tmp_path) -> Path:
+    """The default folder plus corrections.csv: 4 corrections of 3 records in 2 programs."""
+    folder = tmp_path / "evaluation"
+    shutil.copytree(evaluation_folder, folder)
+    pd.DataFrame({"row": [5, 9, 9, 12], "recipient": ["C1", "C2", "C2", "C3"],
+                  "program": ["LV01", "LV03", "LV03", "LV03"],
+                  "kind": ["event_after_last_seen", "event_after_last_seen",
+                           "last_seen_after_cutoff", "event_after_cutoff"]}).to_csv(
+        folder / "corrections.csv", index=False)
+    return folder
 
 
 @pytest.fixture(scope="session")

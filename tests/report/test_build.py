@@ -103,6 +103,7 @@ def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html
     audit.mkdir()
     (audit / "findings.json").write_text(json.dumps([f"hazards for {HOSTILE} vary"]),
                                          encoding="utf-8")
+    (audit / "audit.json").write_text(json.dumps({"model_fingerprint": "ab12cd34"}))
     pd.DataFrame({"covariate": ["age", "global"], "statistic": [11.45, 17.66]}).to_csv(
         audit / "ph_test.csv", index=False)
     pd.DataFrame({"b": range(250)}).to_csv(audit / "bootstrap_expected.csv", index=False)
@@ -121,6 +122,19 @@ def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html
                                      "rules": {**run["rules"], "upper_margin": 1.5}}}
     (audit / "audit.json").write_text(json.dumps(other), encoding="utf-8")
     with pytest.raises(InputError, match="did not make its verdicts with this evaluation's"):
+        render_report(small_folder, audit_folder=audit)
+
+
+def test_an_empty_or_foreign_audit_folder_is_refused(small_folder, tmp_path):
+    audit = tmp_path / "audit"
+    audit.mkdir()
+    with pytest.raises(InputError, match=r"not a complete audit folder \(findings.json and "
+                       r"audit.json missing\), so an empty list of findings would read like"):
+        render_report(small_folder, audit_folder=audit)
+    (audit / "findings.json").write_text("[]")
+    (audit / "audit.json").write_text(json.dumps({"model_fingerprint": "ffff0000"}))
+    with pytest.raises(InputError, match=r"the audit is of another reference model "
+                       r"\(fingerprint ffff0000\.\.\., the evaluation's is ab12cd34"):
         render_report(small_folder, audit_folder=audit)
 
 

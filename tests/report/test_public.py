@@ -45,3 +45,14 @@ def test_public_out_of_range_keeps_a_program_coded_na(evaluation_folder, tmp_pat
     table = pd.read_csv(out / "out_of_range.csv", dtype=str, keep_default_na=False)
     assert table["program"].tolist() == ["NA", "LV01"]
     assert table["recipients"].tolist() == ["<11", "40"]
+
+
+def test_corrections_are_published_as_counts_per_kind(corrections_folder, tmp_path):
+    out = write_public_tables(corrections_folder, tmp_path / "public", 2)
+    counts = pd.read_csv(out / "corrections_by_kind.csv", dtype=str)
+    # hand-counted from the four lines above; a record's recipient id is never published
+    assert counts.to_dict("list") == {
+        "correction": ["event_after_last_seen", "event_after_cutoff", "last_seen_after_cutoff"],
+        "records": ["2", "<2", "<2"]}
+    assert "C2" not in (out / "corrections_by_kind.csv").read_text()
+

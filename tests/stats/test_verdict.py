@@ -290,8 +290,10 @@ def load_rules_default(folder):
     [
         (
             "[verdict]\nprobabilty = 0.9\n",
-            r"rules\.toml: unknown key\(s\) in \[verdict\]: probabilty",
+            r"rules\.toml: unknown key\(s\) in \[verdict\]: probabilty \(closest: "
+            r"'probability'\)\. Allowed keys: .* \(see docs/rules\.md\)",
         ),
+        ("[verdcit]\n", r"unknown top-level key\(s\) verdcit \(closest: 'verdict'\)"),
         (
             "[verdict]\nprobability = 0.5\n",
             r"rules\.toml: \[verdict\] probability must be a number",

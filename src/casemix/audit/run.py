@@ -20,7 +20,12 @@ import pandas as pd
 from casemix._io import atomic_write_text, sha256_file, write_csv, write_json
 from casemix.audit._optional import available
 from casemix.audit.agreement import evaluation_settings, verdict_agreement
-from casemix.audit.bootstrap import ProgramArrays, bootstrap_expected, delta_expected
+from casemix.audit.bootstrap import (
+    ProgramArrays,
+    _check_replicates,
+    bootstrap_expected,
+    delta_expected,
+)
 from casemix.audit.calibration import (
     calibration_by_horizon,
     calibration_by_risk,
@@ -355,6 +360,8 @@ def run_audit(
             "an evaluation folder is checked against its cohort: give the cohort records too "
             "(--cohort)"
         )
+    if cohort_records is not None:
+        _check_replicates(bootstrap)  # before any work, not after the model checks
     model, data = _load(model, reference_records)
     reference_programs = ProgramArrays.build(
         data.time, data.X, data.strata,

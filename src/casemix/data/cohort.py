@@ -7,8 +7,10 @@ For a recipient transplanted on day ``T`` (all dates are whole days):
   in death-censored graft failure): follow-up stops there without an event, and an event
   dated after ``C`` does not count (one dated on ``C`` does);
 * potential follow-up end ``P`` = min(cut-off, ``T`` + horizon);
-* last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later (records already
-  do this and count it);
+* last seen ``L`` = the last-seen date, extended to ``D`` if ``D`` is later and not after the
+  cut-off (records already do this and count it). An event after the cut-off lies outside
+  the period the data are complete for: it is not counted and does not lengthen follow-up
+  past the last real contact;
 * ``event`` = 1 if ``D`` exists and ``D <= P`` (an event on the day of the transplant, on the
   horizon day or on the cut-off day counts), else 0;
 * ``time`` = ``D - T`` if ``event`` else ``min(L, P) - T``, in days (float); never negative,
@@ -38,7 +40,7 @@ Plain pandas/numpy arithmetic on datetime64 columns; nothing is hand-written bey
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
@@ -46,7 +48,7 @@ import pandas as pd
 from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
 
-__all__ = ["DAY_ZERO_TIME", "Cohort", "build_cohort", "follow_up"]
+__all__ = ["DAY_ZERO_TIME", "Cohort", "apply_window", "build_cohort", "follow_up"]
 
 _DAY = pd.Timedelta(days=1)
 # analysis time (days) of a follow-up that ends on the day of the transplant
@@ -78,6 +80,9 @@ class Cohort:
         Records read from the file; ``n_read == len(frame) + len(exclusions)``.
     lost_after_days : float
         The lost-to-follow-up threshold used.
+    corrections : pandas.DataFrame or None
+        ``row``, ``recipient``, ``program``, ``kind``: the records' corrections of the
+        recipients kept in the cohort (those of excluded records are not repeated).
     """
 
     frame: pd.DataFrame
@@ -89,6 +94,7 @@ class Cohort:
     window: tuple[pd.Timestamp | None, pd.Timestamp | None]
     n_read: int
     lost_after_days: float = 182.0
+    corrections: pd.DataFrame | None = field(default=None, repr=False)
 
 
 def follow_up(
@@ -121,12 +127,15 @@ def follow_up(
     """
     ev = ((event_date - transplant) / _DAY).to_numpy(dtype=float)
     seen = ((last_seen - transplant) / _DAY).to_numpy(dtype=float)
-    window = np.minimum(float(horizon_days), ((cutoff - transplant) / _DAY).to_numpy(float))
+    to_cutoff = ((cutoff - transplant) / _DAY).to_numpy(float)
+    window = np.minimum(float(horizon_days), to_cutoff)
     end = np.full(ev.shape, np.nan)
     if end_date is not None:
         end = ((end_date - transplant) / _DAY).to_numpy(dtype=float)
         ev = np.where(end < ev, np.nan, ev)  # an event after the end does not count
-    seen = np.fmax(seen, ev)  # follow-up reaches any recorded event (fmax ignores NaN)
+    # Follow-up reaches a recorded event up to the cut-off (fmax ignores NaN); a later event
+    # is not evidence of survival to the cut-off that the data can be trusted with.
+    seen = np.fmax(seen, np.where(ev <= to_cutoff, ev, np.nan))
     seen = np.fmin(seen, end)  # and stops at the end date (fmin ignores NaN)
     window = np.fmin(window, end)
     event = ev <= window  # False where there is no event (NaN compares False)
@@ -197,9 +206,8 @@ def build_cohort(
                 f"records file '{records.source}' has a column '{name}', which the cohort "
                 "adds; rename that column in the file."
             )
-    tx = frame[spec.columns.transplant_date]
-    reasons = _after_death_reasons(frame, spec, _window_reasons(tx, stamp, start, end))
-    out = frame.loc[reasons["reason"].isna()].copy()
+    exclusions, kept = apply_window(records, stamp, (start, end))
+    out = frame.loc[kept].copy()
     fu = follow_up(
         out[spec.columns.transplant_date],
         out[spec.columns.last_seen],
@@ -213,7 +221,7 @@ def build_cohort(
     out["ended"] = fu["ended"]
     return Cohort(
         frame=out,
-        exclusions=_exclusions(records, reasons),
+        exclusions=exclusions,
         followup=_followup(out[spec.columns.program], fu, lost_after_days),
         outcome=outcome,
         horizon_days=horizon,
@@ -221,7 +229,18 @@ def build_cohort(
         window=(start, end),
         n_read=records.n_read,
         lost_after_days=float(lost_after_days),
+        corrections=_kept_corrections(records, out.index),
     )
+
+
+def _kept_corrections(records: Records, kept: pd.Index) -> pd.DataFrame:
+    corrections = records.corrections
+    if corrections is None or corrections.empty:
+        return pd.DataFrame({"row": pd.Series(dtype=np.int64),
+                             **{c: pd.Series(dtype=object)
+                                for c in ("recipient", "program", "kind")}})
+    inside = corrections["row"].isin(np.asarray(kept) + 1).to_numpy()
+    return corrections.loc[inside].reset_index(drop=True)
 
 
 def _horizon(value: float | None, default: int | None) -> float:
@@ -269,13 +288,54 @@ def _window(window: tuple[object, object] | None) -> tuple[pd.Timestamp | None, 
     return (start, end)
 
 
-def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp, start: pd.Timestamp | None,
+def apply_window(records: Records, cutoff: object,
+                 window: tuple[object, object] | None) -> tuple[pd.DataFrame, pd.Index]:
+    """Exclude the kept records transplanted after the cut-off or outside the window.
+
+    Records dated after death (a last-seen or outcome date later than the death date) are
+    excluded here too, so that every stage that selects recipients counts them alike.
+
+    Parameters
+    ----------
+    records : Records
+    cutoff : date-like or None
+        None skips the cut-off check.
+    window : (date-like or None, date-like or None) or None
+        Inclusive transplant-date window.
+
+    Returns
+    -------
+    exclusions : pandas.DataFrame
+        The records' exclusions plus these, sorted by row (columns as ``Records.exclusions``).
+    kept : pandas.Index
+        Index of ``records.frame`` of the recipients left.
+
+    Raises
+    ------
+    InputError
+        A window whose start is after its end, or a cut-off before the window starts.
+    """
+    stamp = to_timestamp(cutoff, "cut-off")
+    start, end = _window(window)
+    if stamp is not None and start is not None and stamp < start:
+        raise InputError(
+            f"the cut-off {stamp:%Y-%m-%d} precedes the cohort window, which starts "
+            f"{start:%Y-%m-%d}: no transplant in the window has any follow-up. Check the "
+            "cut-off and the window (--cutoff, --from, or [analysis] in the spec)."
+        )
+    tx = records.frame[records.spec.columns.transplant_date]
+    reasons = _after_death_reasons(records.frame, records.spec,
+                                   _window_reasons(tx, stamp, start, end))
+    return _exclusions(records, reasons), tx.index[reasons["reason"].isna().to_numpy()]
+
+
+def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timestamp | None,
                     end: pd.Timestamp | None) -> pd.DataFrame:
     """Reason text and kind for recipients outside the cut-off or window (missing otherwise)."""
     day = tx.dt.strftime("%Y-%m-%d")
     reasons = pd.DataFrame({"reason": None, "kind": None}, index=tx.index, dtype=object)
-    checks = [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
-               "transplanted after the cut-off")]
+    checks = [] if cutoff is None else [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
+                                         "transplanted after the cut-off")]
     if end is not None:
         checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})",
                        "transplanted outside the cohort window"))

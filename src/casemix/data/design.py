@@ -158,7 +158,8 @@ class Term:
                 f"not have: {', '.join(repr(v) for v in found[:5])} in "
                 f"{format_rows(series.index[unseen.to_numpy()])}. Known levels: "
                 f"{', '.join(self.levels)}. Recode them, or declare "
-                f"`other = \"...\"` in [covariates.{self.name}]."
+                f"`other = \"...\"` in [covariates.{self.name}] and fit the reference model "
+                "again (a fitted model keeps the spec it was fitted with)."
             )
         return text.fillna(self.levels[0]), missing
 
@@ -245,10 +246,32 @@ class Design:
             reference (without ``other``), a missing value the design has no term for.
         """
         frame = getattr(frame, "frame", frame)
-        blocks = [term.encode(frame) for term in self.terms]
+        blocks, problems = self._encode(frame)
+        if problems:
+            raise InputError(_all_problems(problems))
         if not blocks:
             return np.zeros((len(frame), 0))
         return np.ascontiguousarray(np.column_stack(blocks), dtype=np.float64)
+
+    def problems(self, frame: pd.DataFrame | Any) -> list[str]:
+        """Every reason :meth:`transform` or :meth:`strata` would refuse ``frame``, one per
+        covariate (and strata), so that a cohort's problems are all listed at once."""
+        frame = getattr(frame, "frame", frame)
+        problems = self._encode(frame)[1]
+        try:
+            self.strata(frame)
+        except InputError as exc:
+            problems.append(str(exc))
+        return problems
+
+    def _encode(self, frame: pd.DataFrame) -> tuple[list[np.ndarray], list[str]]:
+        blocks, problems = [], []
+        for term in self.terms:
+            try:
+                blocks.append(term.encode(frame))
+            except InputError as exc:
+                problems.append(str(exc))
+        return blocks, problems
 
     def strata(self, frame: pd.DataFrame | Any) -> np.ndarray | None:
         """Stratum label of each row, shape (n,), object array of str; None without strata.
@@ -348,6 +371,13 @@ def _term_from_dict(d: Mapping[str, Any]) -> Term:
     values["levels"] = tuple(str(v) for v in values["levels"])
     values["knots"] = tuple(float(v) for v in values["knots"])
     return Term(**values)
+
+
+def _all_problems(problems: list[str]) -> str:
+    if len(problems) == 1:
+        return problems[0]
+    listed = " ".join(f"({i}) {text}" for i, text in enumerate(problems, start=1))
+    return f"{len(problems)} covariates cannot be encoded with the reference model: {listed}"
 
 
 def _column(frame: pd.DataFrame, column: str, name: str) -> pd.Series:

@@ -3,9 +3,12 @@
 Problems with the whole file (missing column, unreadable file, no rows, a column of the wrong
 type in most rows, duplicate recipient ids) raise :class:`~casemix.errors.InputError`. Problems
 with one record exclude that record with a reason (``Records.exclusions``); corrections that
-keep a record (follow-up extended to an event recorded after last-seen, last-seen truncated at
-the cut-off) are listed per record in ``Records.corrections`` and counted per program in
-``Records.warnings``. Nothing is dropped silently: ``n_read == len(frame) + len(exclusions)``.
+keep a record (follow-up extended to an event recorded after last-seen, an event after the
+cut-off set aside, last-seen truncated at the cut-off) are listed per record in
+``Records.corrections`` and counted per program in ``Records.warnings``. Nothing is dropped
+silently: ``n_read == len(frame) + len(exclusions)``, the number of records parsed from a CSV
+file is checked against its lines, and every cell a missing-value token emptied is counted
+(``Records.emptied``).
 
 Row numbers: ``Records.frame`` keeps the 0-based position of each record in the file as its
 index; ``row`` in ``exclusions`` and ``corrections`` and the row numbers in messages are
@@ -16,7 +19,10 @@ shows on line 2). Parsing is done with pandas (``read_csv``, ``read_parquet``,
 
 from __future__ import annotations
 
+import csv
 import datetime as dt
+import re
+import warnings
 from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from pathlib import Path
@@ -25,19 +31,20 @@ import numpy as np
 import pandas as pd
 
 from casemix.data.spec import Covariate, Spec, closest, load_spec
-from casemix.errors import InputError, plural
+from casemix.errors import DataWarning, InputError, plural
 
 __all__ = [
     "WARNING_KINDS",
     "Records",
     "clean_text",
+    "count_by_kind",
     "format_rows",
     "read_records",
     "to_timestamp",
 ]
 
 #: Kinds of correction that keep a record, as they appear in ``Records.warnings``.
-WARNING_KINDS = ("event_after_last_seen", "last_seen_after_cutoff")
+WARNING_KINDS = ("event_after_last_seen", "event_after_cutoff", "last_seen_after_cutoff")
 
 _CSV_SUFFIXES = (".csv", ".txt")
 _PARQUET_SUFFIXES = (".parquet", ".pq")
@@ -53,7 +60,7 @@ _WRONG_TYPE_MIN = 3
 _SHOW = 5  # how many examples a message shows
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class Records:
     """A validated extract.
 
@@ -81,6 +88,11 @@ class Records:
         The spec used.
     cutoff : pandas.Timestamp or None
         The cut-off applied (transplants after it excluded, last-seen truncated to it).
+    today : pandas.Timestamp or None
+        The day the records were checked against (a date after it excludes the record).
+    emptied : pandas.DataFrame
+        ``token``, ``column``, ``cells``: how many cells of each column each missing-value
+        token emptied (CSV files only; tokens that emptied nothing are not listed).
     """
 
     frame: pd.DataFrame
@@ -91,6 +103,16 @@ class Records:
     source: Path
     spec: Spec
     cutoff: pd.Timestamp | None = None
+    today: pd.Timestamp | None = None
+    emptied: pd.DataFrame | None = None
+
+    def __repr__(self) -> str:
+        cut = "none" if self.cutoff is None else f"{self.cutoff:%Y-%m-%d}"
+        return (
+            f"<Records '{self.source}': {self.n_read} read, {len(self.frame)} kept, "
+            f"{len(self.exclusions)} excluded, {len(self.corrections)} corrections; "
+            f"cut-off {cut}>"
+        )
 
 
 def format_rows(index: Iterable[object], limit: int = _SHOW) -> str:
@@ -162,7 +184,7 @@ class _Ledger:
 
 
 def read_records(
-    path: str | Path, spec: Spec | str | Path, *, cutoff: object = None
+    path: str | Path, spec: Spec | str | Path, *, cutoff: object = None, today: object = None
 ) -> Records:
     """Read a CSV or Parquet extract and validate it against a spec.
 
@@ -176,6 +198,9 @@ def read_records(
         Data cut-off. Transplants after it are excluded; last-seen dates after it are
         truncated to it (counted as ``last_seen_after_cutoff``). Default: the spec's
         ``analysis.cutoff``; with neither, no cut-off is applied.
+    today : date-like, optional
+        A record with any date after this day is excluded (``date after today``): such a
+        date cannot be true. Default: the computer's date today.
 
     Returns
     -------
@@ -190,7 +215,8 @@ def read_records(
     spec = spec if isinstance(spec, Spec) else load_spec(spec)
     path = Path(path)
     stamp = to_timestamp(cutoff if cutoff is not None else spec.analysis.cutoff, "cut-off")
-    raw = _read_table(path)
+    day = to_timestamp(today if today is not None else dt.date.today(), "today")
+    raw, emptied = _read_table(path, spec)
     _check_columns(raw, spec, path)
     frame = raw.copy()
     frame.index = pd.RangeIndex(len(raw))
@@ -198,11 +224,12 @@ def read_records(
     for column in (spec.columns.recipient, spec.columns.program, spec.strata):
         if column is not None:
             frame[column] = clean_text(frame[column])
+    frame[spec.columns.program] = _program_codes(frame[spec.columns.program], spec, path)
     _check_duplicates(frame, spec, path)
     _parse_date_columns(frame, spec, path, ledger)
     for cov in spec.covariates:
-        _parse_covariate(frame, cov, path, ledger)
-    _check_records(frame, spec, stamp, ledger)
+        _parse_covariate(frame, cov, path, ledger, spec.decimal)
+    _check_records(frame, spec, stamp, ledger, day)
     excluded = ledger.excluded
     exclusions = _exclusion_frame(frame, spec, ledger, excluded)
     kept = frame.loc[~excluded].copy()
@@ -216,10 +243,41 @@ def read_records(
         source=path,
         spec=spec,
         cutoff=stamp,
+        today=day,
+        emptied=emptied,
     )
 
 
-def _read_table(path: Path) -> pd.DataFrame:
+def count_by_kind(table: pd.DataFrame, key: str = "reason") -> pd.DataFrame:
+    """Count the rows of an exclusions or corrections table per ``kind``, most frequent first.
+
+    Kinds carry no record's own values (dates, ages), so the counts can be published. A record
+    excluded for several kinds counts once, under their joint kind (``"a; b"``), so that the
+    counts add up to the records excluded. Used by ``casemix check`` and the public tables.
+
+    Parameters
+    ----------
+    table : pandas.DataFrame
+        With a ``kind`` column (one row per excluded record, or per correction).
+    key : str, default "reason"
+        Name of the output column holding the kind.
+
+    Returns
+    -------
+    pandas.DataFrame
+        Columns ``key``, ``records``; ties sorted by kind.
+    """
+    counts = (
+        table.groupby(table["kind"].rename(key), sort=True)
+        .size()
+        .rename("records")
+        .reset_index()
+    )
+    return counts.sort_values(["records", key], ascending=[False, True], kind="stable",
+                              ignore_index=True)
+
+
+def _read_table(path: Path, spec: Spec) -> tuple[pd.DataFrame, pd.DataFrame]:
     if not path.is_file():
         raise InputError(f"records file '{path}' does not exist; check the path.")
     suffix = path.suffix.lower()
@@ -227,9 +285,12 @@ def _read_table(path: Path) -> pd.DataFrame:
         if suffix in _PARQUET_SUFFIXES:
             raw = pd.read_parquet(path)
         elif suffix in _CSV_SUFFIXES:
-            # Everything as text: types are coerced column by column so that a bad cell
-            # becomes an exclusion with a reason rather than a silently changed dtype.
-            raw = pd.read_csv(path, dtype=str, encoding="utf-8-sig", skipinitialspace=True)
+            _check_header(path, spec)
+            # Everything as text, and no missing-value guessing: types are coerced column by
+            # column so that a bad cell becomes an exclusion with a reason rather than a
+            # silently changed dtype, and the spec's missing-value tokens are applied here.
+            raw = pd.read_csv(path, dtype=str, encoding="utf-8-sig", skipinitialspace=True,
+                              sep=spec.delimiter, keep_default_na=False, na_filter=False)
         else:
             raise InputError(
                 f"records file '{path}' has suffix '{path.suffix}'; casemix reads .csv and "
@@ -237,6 +298,19 @@ def _read_table(path: Path) -> pd.DataFrame:
             )
     except pd.errors.EmptyDataError:
         raise InputError(f"records file '{path}' is empty; it needs a header row.") from None
+    except pd.errors.ParserError as exc:
+        opened = re.search(r"EOF inside string starting at row (\d+)", str(exc))
+        if opened is None:
+            raise InputError(
+                f"records file '{path}' cannot be read as CSV ({exc}); check the separator "
+                "(delimiter in the [records] table of the spec) and the quotes."
+            ) from None
+        row = int(opened.group(1))  # 0-based line of the file = 1-based data row
+        raise InputError(
+            f"records file '{path}': a double quote (\") on line {row + 1} (data row {row}) "
+            "opens a field that is never closed, so every later line would be read into it. "
+            "Remove the stray quote, or quote the field on both sides."
+        ) from None
     except (OSError, ValueError, UnicodeDecodeError) as exc:
         if isinstance(exc, InputError):
             raise
@@ -246,7 +320,107 @@ def _read_table(path: Path) -> pd.DataFrame:
         ) from None
     if len(raw) == 0:
         raise InputError(f"records file '{path}' has no data rows (only a header).")
-    return raw
+    if suffix in _PARQUET_SUFFIXES:
+        return raw, _emptied_frame([])
+    _check_line_breaks(raw, spec, path)
+    return _apply_missing_tokens(raw, spec.missing_tokens)
+
+
+def _check_header(path: Path, spec: Spec) -> None:
+    """Refuse a header naming a column twice, or one written with another separator."""
+    try:
+        with path.open(encoding="utf-8-sig", newline="") as handle:
+            header = next(csv.reader(handle, delimiter=spec.delimiter), [])
+    except (OSError, UnicodeDecodeError):
+        return  # read_csv reports it with its own message
+    names = [h.strip() for h in header]
+    twice = sorted({n for n in names if names.count(n) > 1})
+    if twice:
+        shown = ", ".join(f"'{n}'" for n in twice)
+        raise InputError(
+            f"records file '{path}': the header names {shown} more than once; each column "
+            "needs its own name (casemix would not know which one to use). Rename or remove "
+            "the repeated column."
+        )
+    if len(names) == 1 and spec.columns.recipient not in names:
+        for other in (";", "\t", "|", ","):
+            parts = [p.strip().strip('"') for p in names[0].split(other)]
+            if other != spec.delimiter and spec.columns.recipient in parts:
+                shown, setting = ("tab", "\\t") if other == "\t" else (f"'{other}'", other)
+                raise InputError(
+                    f"records file '{path}': the header is one column that holds the spec's "
+                    f"column names separated by {shown}; the file is separated by {shown}, "
+                    f"not '{spec.delimiter}'. Set delimiter = \"{setting}\" in the [records] "
+                    "table of the spec (and decimal = \",\" if numbers use a decimal comma)."
+                )
+
+
+def _check_line_breaks(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
+    """Refuse line breaks inside cells of the spec's columns (a stray quote merges lines).
+
+    Codes, dates and numbers never hold a line break; when one does, a double quote opened a
+    field that ran over the following lines, and the records parsed no longer match the
+    file's lines. The message gives the file line of the record where the field starts.
+    """
+    columns = [c for c in spec.required_columns if c in raw.columns]
+    breaks = pd.DataFrame({c: raw[c].str.contains("[\r\n]", regex=True) for c in columns})
+    hit = breaks.to_numpy().any(axis=1)
+    if not hit.any():
+        return
+    lines_in = raw.apply(lambda col: col.str.count("\n")).sum(axis=1).to_numpy()
+    first = int(np.flatnonzero(hit)[0])
+    line = 2 + first + int(lines_in[:first].sum())  # header is line 1
+    column = breaks.columns[breaks.iloc[first].to_numpy()][0]
+    spans = int(lines_in[first]) + 1
+    raise InputError(
+        f"records file '{path}': {plural(int(hit.sum()), 'record')} hold line breaks in "
+        f"columns that cannot have them; the first, data row {first + 1}, starts on line "
+        f"{line} and its column '{column}' runs over {spans} lines: a double quote (\") in or "
+        f"near line {line} opens a field that swallows the following lines "
+        f"({len(raw)} records parsed from {len(raw) + int(lines_in.sum())} data lines). "
+        "Remove the stray quote, or quote the field on both sides."
+    )
+
+
+def _apply_missing_tokens(raw: pd.DataFrame,
+                          tokens: tuple[str, ...]) -> tuple[pd.DataFrame, pd.DataFrame]:
+    """Empty the cells whose stripped text is a token; count them per token and column."""
+    counts = []
+    out = {}
+    for column in raw.columns:
+        text = raw[column].str.strip()
+        hit = text.isin(tokens)
+        if hit.any():
+            for token, n in text[hit].value_counts(sort=False).items():
+                if token != "":  # an empty cell is simply empty
+                    counts.append((token, column, int(n)))
+        out[column] = raw[column].astype(object).mask(hit.to_numpy(), None)
+    return pd.DataFrame(out, index=raw.index), _emptied_frame(counts)
+
+
+def _emptied_frame(counts: list[tuple[str, str, int]]) -> pd.DataFrame:
+    frame = pd.DataFrame(counts, columns=["token", "column", "cells"])
+    frame = frame.astype({"token": object, "column": object, "cells": np.int64})
+    return frame.sort_values(["token", "column"], kind="stable", ignore_index=True)
+
+
+def _program_codes(codes: pd.Series, spec: Spec, path: Path) -> pd.Series:
+    """Normalise codes (spec option) or warn about codes equal up to letter case and spaces."""
+    key = codes.str.upper().str.replace(r"\s+", "", regex=True)
+    if spec.normalise_programs:
+        return key.astype(object).where(codes.notna(), None)
+    variants = pd.DataFrame({"key": key, "code": codes}).dropna().drop_duplicates()
+    clash = variants[variants["key"].duplicated(keep=False)]
+    if len(clash):
+        groups = clash.groupby("key", sort=True)["code"].apply(sorted)
+        shown = "; ".join(" and ".join(f"'{c}'" for c in g) for g in groups.iloc[:_SHOW])
+        warnings.warn(DataWarning(
+            f"records file '{path}': {plural(len(groups), 'program code')} differ from another "
+            f"code only in letter case or spaces ({shown}); they are counted as different "
+            "programs. If they are the same program, set normalise_programs = true in the "
+            "[records] table of the spec (codes upper-cased, spaces removed)."
+        ), stacklevel=3)
+    return codes
 
 
 def _check_columns(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
@@ -365,7 +539,8 @@ def _parse_date_columns(frame: pd.DataFrame, spec: Spec, path: Path, ledger: _Le
         frame[column] = dates
 
 
-def _numbers(series: pd.Series, binary: bool) -> tuple[pd.Series, pd.Series]:
+def _numbers(series: pd.Series, binary: bool,
+             decimal: str = ".") -> tuple[pd.Series, pd.Series]:
     """Float values (NaN where missing or unreadable) and the filled cells of a column."""
     if pd.api.types.is_bool_dtype(series) or pd.api.types.is_numeric_dtype(series):
         values, present = series.astype(float), series.notna()
@@ -375,33 +550,44 @@ def _numbers(series: pd.Series, binary: bool) -> tuple[pd.Series, pd.Series]:
         if binary:
             values = text.str.lower().map(_BINARY_TEXT).astype(float)
         else:
+            if decimal == ",":  # "27,5" -> "27.5"; a '.' may be a thousands mark: unreadable
+                dotted = text.str.contains(".", regex=False, na=False)
+                text = text.where(~dotted).str.replace(",", ".", regex=False)
             values = pd.to_numeric(text, errors="coerce").astype(float)
     allowed = values.isin([0.0, 1.0]) if binary else np.isfinite(values)
     return values.where(allowed), present
 
 
-def _parse_covariate(frame: pd.DataFrame, cov: Covariate, path: Path, ledger: _Ledger) -> None:
+def _label(cov: Covariate) -> str:
+    """The file's column name and, where different, the covariate's name in brackets."""
+    return cov.column if cov.column == cov.name else f"{cov.column} ({cov.name})"
+
+
+def _parse_covariate(frame: pd.DataFrame, cov: Covariate, path: Path, ledger: _Ledger,
+                     decimal: str = ".") -> None:
     original = frame[cov.column]
     if cov.kind == "categorical":
         frame[cov.column] = clean_text(original)
         return
     binary = cov.kind == "binary"
+    mark = "','" if decimal == "," else "'.'"
     what, fix = (
         ("binary", "use 0/1, yes/no or true/false.") if binary
-        else ("a number", "use numbers with '.' decimals.")
+        else ("a number", f"use numbers with {mark} decimals (set decimal in the [records] "
+              "table of the spec).")
     )
-    values, present = _numbers(original, binary)
+    values, present = _numbers(original, binary, decimal)
     bad = present & values.isna()
     where = f"records file '{path}': column '{cov.column}' (covariate {cov.name})"
     _fail_if_mostly_bad(bad, present, original, where, what, fix)
-    ledger.exclude(bad.to_numpy(), f"unreadable {cov.name}",
-                   lambda p: f"{cov.column} '{original.iloc[p]}' is not {what}",
+    ledger.exclude(bad.to_numpy(), f"unreadable {_label(cov)}",
+                   lambda p: f"{_label(cov)} '{original.iloc[p]}' is not {what}",
                    bad_cell=cov.column)
     frame[cov.column] = values
 
 
 def _check_records(frame: pd.DataFrame, spec: Spec, cutoff: pd.Timestamp | None,
-                   ledger: _Ledger) -> None:
+                   ledger: _Ledger, today: pd.Timestamp) -> None:
     cols = spec.columns
     required = [
         (cols.recipient, "recipient id"), (cols.program, "program"),
@@ -418,6 +604,11 @@ def _check_records(frame: pd.DataFrame, spec: Spec, cutoff: pd.Timestamp | None,
         before = (frame[column] < tx).to_numpy()
         ledger.exclude(before, f"{column} before the transplant date", lambda p, c=column: (
             f"{c} {_day(frame[c].iloc[p])} is before the transplant date {_day(tx.iloc[p])}"))
+    for column in spec.date_columns:
+        future = (frame[column] > today).to_numpy()
+        ledger.exclude(future, "date after today", lambda p, c=column: (
+            f"{c} {_day(frame[c].iloc[p])} is after today ({_day(today)}); a date that "
+            "cannot be true makes the whole record doubtful"))
     for cov in spec.covariates:
         _check_covariate(frame[cov.column], cov, ledger)
     if cutoff is not None:
@@ -433,17 +624,16 @@ def _day(value: pd.Timestamp) -> str:
 def _check_covariate(values: pd.Series, cov: Covariate, ledger: _Ledger) -> None:
     if cov.missing == "exclude":
         empty = values.isna().to_numpy() & ~ledger.unreadable(cov.column)
-        ledger.exclude(empty, f"missing {cov.name}",
-                       f"{cov.name} (column '{cov.column}') is missing and its missing "
-                       "policy is \"exclude\"")
+        ledger.exclude(empty, f"missing {_label(cov)}",
+                       f"{_label(cov)} is missing and its missing policy is \"exclude\"")
     if cov.lower is None and cov.upper is None:
         return
     lower = -np.inf if cov.lower is None else cov.lower
     upper = np.inf if cov.upper is None else cov.upper
     outside = (values.notna() & ((values < lower) | (values > upper))).to_numpy()
     bounds = f"{lower:g} to {upper:g}"
-    ledger.exclude(outside, f"{cov.name} outside its plausible range", lambda p: (
-        f"{cov.name} {values.iloc[p]:g} is outside the plausible range {bounds}"))
+    ledger.exclude(outside, f"{_label(cov)} outside its plausible range", lambda p: (
+        f"{_label(cov)} {values.iloc[p]:g} is outside the plausible range {bounds}"))
 
 
 def _exclusion_frame(frame: pd.DataFrame, spec: Spec, ledger: _Ledger,
@@ -462,11 +652,19 @@ def _exclusion_frame(frame: pd.DataFrame, spec: Spec, ledger: _Ledger,
 
 def _correct(kept: pd.DataFrame, spec: Spec,
              cutoff: pd.Timestamp | None) -> tuple[pd.DataFrame, pd.DataFrame]:
-    """Extend last-seen to the latest recorded event, then truncate it at the cut-off."""
+    """Extend last-seen to the latest event up to the cut-off, then truncate it at the cut-off.
+
+    An event dated after the cut-off is outside the data's complete period: it is not counted
+    and does not lengthen follow-up (noted as ``event_after_cutoff``).
+    """
     last = spec.columns.last_seen
     notes = []
     if spec.event_columns:
-        latest = kept[list(spec.event_columns)].max(axis=1)
+        events = kept[list(spec.event_columns)]
+        if cutoff is not None:
+            notes.append(((events > cutoff).any(axis=1), "event_after_cutoff"))
+            events = events.where(events <= cutoff)
+        latest = events.max(axis=1)
         extend = latest > kept[last]
         notes.append((extend, "event_after_last_seen"))
         kept[last] = kept[last].mask(extend, latest)

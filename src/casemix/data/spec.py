@@ -27,6 +27,7 @@ else:  # pragma: no cover - Python 3.10 only
     import tomli as tomllib
 
 __all__ = [
+    "DEFAULT_MISSING_TOKENS",
     "KINDS",
     "MISSING_POLICIES",
     "SPLINE_KNOT_QUANTILES",
@@ -60,6 +61,11 @@ _TOP_KEYS = ("columns", "outcomes", "covariates", "strata", "analysis", "records
 _COLUMN_KEYS = ("recipient", "program", "transplant_date", "last_seen")
 _COVARIATE_KEYS = ("kind", "missing", "reference", "knots", "lower", "upper", "column", "other")
 _ANALYSIS_KEYS = ("cutoff", "horizon_days", "cohort_from", "cohort_to")
+_RECORDS_KEYS = ("date_format", "delimiter", "decimal", "missing", "normalise_programs")
+
+#: Cell texts read as an empty cell (after stripping spaces), unless ``[records] missing``
+#: gives another list. Matched exactly: "none", "-", "?" or "." are not in it.
+DEFAULT_MISSING_TOKENS = ("", "NA", "N/A", "n/a", "NULL", "null", "NaN", "nan", "#N/A")
 # Options that only make sense for some kinds; giving them elsewhere is a mistake to report.
 _KIND_OPTIONS = {
     "reference": ("categorical",),
@@ -230,6 +236,14 @@ class Spec:
     analysis : Analysis
     date_format : str or None
         ``strftime`` format of the date columns; ``None`` means ISO 8601.
+    delimiter : str
+        Field separator of a CSV file (one character), default ``","``.
+    decimal : str
+        Decimal mark of numbers in a CSV file, ``"."`` (default) or ``","``.
+    missing_tokens : tuple of str
+        Cell texts read as empty (default :data:`DEFAULT_MISSING_TOKENS`).
+    normalise_programs : bool
+        Upper-case program codes and remove their spaces before use (default False).
     path : pathlib.Path or None
         File the spec was read from; not part of equality or of :meth:`to_dict`.
     """
@@ -241,6 +255,10 @@ class Spec:
     analysis: Analysis = field(default_factory=Analysis)
     date_format: str | None = None
     path: Path | None = field(default=None, compare=False)
+    delimiter: str = ","
+    decimal: str = "."
+    missing_tokens: tuple[str, ...] = DEFAULT_MISSING_TOKENS
+    normalise_programs: bool = False
 
     @property
     def where(self) -> str:
@@ -313,8 +331,17 @@ class Spec:
         }
         if analysis:
             out["analysis"] = analysis
-        if self.date_format is not None:
-            out["records"] = {"date_format": self.date_format}
+        records = {
+            "date_format": self.date_format,
+            "delimiter": None if self.delimiter == "," else self.delimiter,
+            "decimal": None if self.decimal == "." else self.decimal,
+            "missing": (None if self.missing_tokens == DEFAULT_MISSING_TOKENS
+                        else list(self.missing_tokens)),
+            "normalise_programs": self.normalise_programs or None,
+        }
+        records = {k: v for k, v in records.items() if v is not None}
+        if records:
+            out["records"] = records
         return out
 
 
@@ -396,8 +423,8 @@ def spec_from_dict(d: Mapping[str, Any], *, path: str | Path | None = None) -> S
         covariates=_covariates(d.get("covariates", {}), where),
         strata=_strata(d.get("strata"), where),
         analysis=_analysis(_table(d.get("analysis", {}), "analysis", where), where),
-        date_format=_date_format(_table(d.get("records", {}), "records", where), where),
         path=None if path is None else Path(path),
+        **_records_format(_table(d.get("records", {}), "records", where), where),
     )
     _check_roles(spec, where)
     return spec
@@ -606,8 +633,41 @@ def _analysis(table: Mapping[str, Any], where: str) -> Analysis:
     return analysis
 
 
+def _records_format(table: Mapping[str, Any], where: str) -> dict[str, Any]:
+    """The ``[records]`` table: how the file is written (see docs/spec.md)."""
+    _check_keys(table, _RECORDS_KEYS, "records", where)
+    delimiter = table.get("delimiter", ",")
+    if not isinstance(delimiter, str) or len(delimiter) != 1 or delimiter in "\"\r\n":
+        raise SpecError(
+            f"{where}: 'records.delimiter' = {delimiter!r} must be one character such as "
+            "\",\", \";\" or \"\\t\"."
+        )
+    decimal = table.get("decimal", ".")
+    if decimal not in (".", ","):
+        raise SpecError(f"{where}: 'records.decimal' = {decimal!r} must be \".\" or \",\".")
+    if decimal == delimiter:
+        raise SpecError(
+            f"{where}: 'records.decimal' and 'records.delimiter' are both {decimal!r}; with a "
+            "decimal comma the fields are usually separated by \";\"."
+        )
+    tokens = table.get("missing", DEFAULT_MISSING_TOKENS)
+    if isinstance(tokens, str) or not all(isinstance(t, str) for t in tokens):
+        raise SpecError(
+            f"{where}: 'records.missing' must be a list of texts such as [\"\", \"NA\", \"-\"]."
+        )
+    normalise = table.get("normalise_programs", False)
+    if not isinstance(normalise, bool):
+        raise SpecError(f"{where}: 'records.normalise_programs' must be true or false.")
+    return {
+        "date_format": _date_format(table, where),
+        "delimiter": delimiter,
+        "decimal": decimal,
+        "missing_tokens": tuple(dict.fromkeys(t.strip() for t in tokens)),
+        "normalise_programs": normalise,
+    }
+
+
 def _date_format(table: Mapping[str, Any], where: str) -> str | None:
-    _check_keys(table, ("date_format",), "records", where)
     value = table.get("date_format")
     if value is None:
         return None

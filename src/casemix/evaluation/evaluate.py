@@ -6,6 +6,7 @@ contract the report and the command line read; see DEVELOPERS.md).
 
 from __future__ import annotations
 
+import warnings
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -15,10 +16,11 @@ import pandas as pd
 from scipy import stats
 
 import casemix
-from casemix._io import sha256_file, write_csv, write_json
+from casemix._io import replace_folder, sha256_file, write_csv, write_json
+from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
-from casemix.data.records import Records, read_records
-from casemix.errors import InputError
+from casemix.data.records import Records, count_by_kind, read_records
+from casemix.errors import DataWarning, InputError
 from casemix.evaluation.expected import expected_events
 from casemix.evaluation.explain import casemix_contributions
 from casemix.evaluation.programs import program_table, survival_curves
@@ -66,6 +68,16 @@ PROGRAM_COLUMNS = [
 NETWORK_TEST_LEVEL = 0.05
 """Two-sided p-value below which the network's overall O/E is called different from 1."""
 
+#: Entries of an evaluation folder that belong to one evaluation: a new save replaces them all
+#: (a stale report or public release of an earlier run never stays beside new results).
+OWNED_FILES = (
+    "programs.csv", "recipients.csv", "exclusions.csv", "corrections.csv", "followup.csv",
+    "casemix.csv", "curves.csv", "coefficients.csv", "out_of_range.csv", "run.json",
+    "report.html", "public",
+)  # fmt: skip
+#: Inputs that may sit beside the results (``casemix demo`` writes them there); kept as they are.
+INPUT_FILES = ("reference.csv", "cohort.csv", "spec.toml", "rules.toml", "model.json")
+
 CAUTIONS = (
     "This is a statistical indicator that compares observed with expected events; it is not "
     "a finding about the quality of care of any program.",
@@ -89,7 +101,10 @@ class Evaluation:
     recipients : DataFrame
         ``recipient``, ``program``, ``time``, ``event``, ``expected``, ``lp``, ``stratum``.
     exclusions : DataFrame
-        ``row``, ``recipient``, ``reason``.
+        ``row``, ``recipient``, ``reason``, ``program``, ``kind``.
+    corrections : DataFrame
+        ``row``, ``recipient``, ``program``, ``kind``: one line per correction of a recipient
+        kept in the cohort (see casemix.data.records).
     followup : DataFrame
         Per program: follow-up completeness and lost to follow-up.
     casemix : DataFrame
@@ -117,15 +132,30 @@ class Evaluation:
     prior: Prior
     rules: Rules
     run: dict
+    corrections: pd.DataFrame | None = None
 
     def save(self, folder: str | Path) -> Path:
-        """Write the evaluation files into ``folder`` (created if missing), each atomically."""
-        folder = Path(folder)
-        folder.mkdir(parents=True, exist_ok=True)
+        """Write the evaluation files into ``folder`` as a whole (see casemix._io.replace_folder).
+
+        A new folder is created; an existing one must be empty, an earlier evaluation folder
+        (its :data:`OWNED_FILES` are all replaced, so no stale file stays) or hold only
+        :data:`INPUT_FILES`. The files are written into a temporary folder that is then
+        swapped in.
+
+        Raises
+        ------
+        InputError
+            ``folder`` holds other files and is not an evaluation folder.
+        """
+        return replace_folder(Path(folder), self._write, owned=OWNED_FILES,
+                              allowed=INPUT_FILES)
+
+    def _write(self, folder: Path) -> None:
         tables = {
             "programs.csv": self.programs,
             "recipients.csv": self.recipients,
             "exclusions.csv": self.exclusions,
+            "corrections.csv": self.corrections,
             "followup.csv": self.followup,
             "casemix.csv": self.casemix,
             "curves.csv": self.curves,
@@ -133,9 +163,9 @@ class Evaluation:
             "out_of_range.csv": self.out_of_range,
         }
         for name, table in tables.items():
-            write_csv(folder / name, table)
+            if table is not None:
+                write_csv(folder / name, table)
         write_json(folder / "run.json", self.run)
-        return folder
 
 
 def coefficient_table(model: ReferenceModel, level: float = 0.95) -> pd.DataFrame:
@@ -209,6 +239,7 @@ def evaluate(
         model = ReferenceModel.load(model_path)
     records = _records(cohort_records, model, cutoff)
     rules = _rules(rules)
+    provenance = _provenance(cohort_records, records, model, cutoff, window)
     if cutoff is None:
         cutoff = records.cutoff
     _, cutoff, window = resolve_analysis(model.spec, model.horizon_days, cutoff, window)
@@ -216,8 +247,12 @@ def evaluate(
     if cohort.frame.empty:
         raise InputError(
             f"no recipient of {records.source} is left in the evaluation cohort (cut-off "
-            f"{cutoff}, window {window}); check the dates and the exclusions"
+            f"{_date_text(cutoff)}, window {_date_text(window[0]) or 'any'} to "
+            f"{_date_text(window[1]) or 'any'}); all {cohort.n_read} records are excluded. "
+            "Check the dates and the exclusions."
         )
+    for text in reason_warnings(cohort.exclusions, cohort.n_read):
+        warnings.warn(DataWarning(f"{records.source}: {text}"), stacklevel=2)
     expected = expected_events(cohort, model)
     table = program_table(expected, level=rules.credible_level)
     observed, exp = table["observed"].to_numpy(), table["expected"].to_numpy()
@@ -246,6 +281,7 @@ def evaluate(
     run = _run_facts(records, cohort, model, model_path, prior, rules)
     run.update(_network_facts(programs, prior, rules))
     run["cautions"] = list(CAUTIONS) + _network_cautions(run, prior)
+    run["provenance"] = provenance
     return Evaluation(
         programs=programs[PROGRAM_COLUMNS],
         recipients=expected.frame.drop(columns="expected_at_horizon"),
@@ -258,6 +294,7 @@ def evaluate(
         prior=prior,
         rules=rules,
         run=run,
+        corrections=cohort.corrections,
     )
 
 
@@ -304,6 +341,24 @@ def _network_cautions(run: dict, prior: Prior) -> list[str]:
     return cautions
 
 
+def _provenance(given_records, records: Records, model: ReferenceModel, cutoff,
+                window) -> dict[str, str]:
+    """Where the cut-off and the window come from: given, the records, or the model's spec."""
+    if cutoff is not None:
+        cut = "given"
+    elif isinstance(given_records, Records) and records.cutoff is not None:
+        cut = "records"
+    else:
+        cut = "spec"
+    if window is not None:
+        win = "given"
+    elif model.spec.analysis.window != (None, None):
+        win = "spec"
+    else:
+        win = "none"
+    return {"cutoff": cut, "window": win}
+
+
 def _date_text(value) -> str | None:
     if value is None or (isinstance(value, float) and np.isnan(value)):
         return None
@@ -345,6 +400,11 @@ def _run_facts(records, cohort, model, model_path, prior, rules) -> dict[str, An
             "read": int(cohort.n_read),
             "kept": len(cohort.frame),
             "excluded": len(cohort.exclusions),
+            "corrected": int(cohort.corrections["row"].nunique()),
+            "corrections": {str(k): int(n) for k, n in
+                            cohort.corrections["kind"].value_counts().sort_index().items()},
+            "excluded_by_reason": {str(k): int(n) for k, n in
+                                   count_by_kind(cohort.exclusions).itertuples(index=False)},
         },
         "cautions": list(CAUTIONS),
     }

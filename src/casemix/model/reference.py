@@ -93,7 +93,7 @@ def reference_data(
     )
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, repr=False)
 class ReferenceModel:
     """A fitted reference model: everything needed to compute expected events for a cohort.
 
@@ -134,6 +134,14 @@ class ReferenceModel:
     concordance: float
     casemix_version: str
     group_offsets: tuple[float, ...]
+
+    def __repr__(self) -> str:
+        fit = self.fit
+        return (
+            f"<ReferenceModel {self.outcome} at {self.horizon_days} days: {len(fit.names)} "
+            f"terms, {fit.n} recipients, {fit.n_events} events, cut-off "
+            f"{self.cutoff.isoformat()}, fingerprint {self.fingerprint[:12]}>"
+        )
 
     def matrices(self, cohort: Cohort) -> tuple[np.ndarray, np.ndarray | None]:
         """Return the design matrix and strata of a cohort under this model's frozen design."""
@@ -406,6 +414,19 @@ def resolve_analysis(spec: Spec, horizon_days, cutoff, window) -> tuple[int, dt.
     return int(horizon_days), _as_date(cutoff, "cut-off"), window
 
 
+def _check_horizon_support(time: np.ndarray, horizon_days: int, records: Records) -> None:
+    if len(time) and time.max() >= horizon_days:
+        return
+    longest = f"{time.max():g} days" if len(time) else "none (no recipient is left)"
+    raise InputError(
+        f"the reference population of '{records.source}' cannot support a horizon of "
+        f"{horizon_days} days: its longest follow-up is {longest} and none of its "
+        f"{len(time)} recipients was followed to day {horizon_days}, so the baseline hazard "
+        "would stop short of the horizon. Choose a horizon the reference follow-up reaches, "
+        "or a reference population with longer follow-up (a later cut-off)."
+    )
+
+
 def fit_reference(
     records: Records,
     spec: Spec | str | Path | None = None,
@@ -432,6 +453,12 @@ def fit_reference(
     ties : {"efron", "breslow"}
     window : (date or None, date or None), optional
         Transplant-date window of the reference population.
+
+    Raises
+    ------
+    InputError
+        No reference recipient was followed to the horizon: the baseline hazard would stop
+        short of it and every expected count at the horizon would be an extrapolation.
     """
     if spec is None:
         spec = records.spec
@@ -440,6 +467,7 @@ def fit_reference(
     spec.outcome(outcome)
     horizon_days, cutoff, window = resolve_analysis(spec, horizon_days, cutoff, window)
     data = reference_data(records, spec, outcome, horizon_days, cutoff, window)
+    _check_horizon_support(data.time, horizon_days, records)
     fit = fit_cox(
         data.time, data.event, data.X, ties=ties, strata=data.strata, names=data.design.columns
     )

@@ -114,8 +114,9 @@ def render_report(
     if competing is not None:
         sections.insert(-1, competing)
     if audit_folder is not None:
-        check_audit_folder(audit_folder, data.run)
-        sections.append(audit_section(audit_folder))
+        audit = audit_section(audit_folder, data.run["model"].get("fingerprint"))
+        check_audit_folder(audit_folder, data.run)  # same rules and prior as the evaluation
+        sections.append(audit)
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
     return render_page(

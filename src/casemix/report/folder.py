@@ -58,6 +58,9 @@ class EvaluationFolder:
         The CSV files of the same names; ``programs`` sorted by program code.
     run : dict
         The parsed ``run.json``.
+    corrections : DataFrame or None
+        ``corrections.csv`` (``row``, ``recipient``, ``program``, ``kind``); None for a folder
+        written before corrections were saved.
     """
 
     path: Path
@@ -69,6 +72,7 @@ class EvaluationFolder:
     curves: pd.DataFrame
     coefficients: pd.DataFrame
     run: dict
+    corrections: pd.DataFrame | None = None
 
 
 def _rows(mask: np.ndarray) -> str:
@@ -167,6 +171,20 @@ def _read_run(folder: Path) -> dict:
     return run
 
 
+def _read_corrections(folder: Path) -> pd.DataFrame | None:
+    path = folder / "corrections.csv"
+    if not path.is_file():  # folders written before corrections were saved
+        return None
+    frame = pd.read_csv(path, converters={c: str for c in ("recipient", "program", "kind")})
+    missing = [c for c in ("row", "recipient", "program", "kind") if c not in frame.columns]
+    if missing:
+        raise InputError(
+            f"{path}: missing {plural(len(missing), 'column')} {', '.join(missing)}; write the "
+            "evaluation again."
+        )
+    return frame
+
+
 def read_evaluation_folder(folder: str | Path) -> EvaluationFolder:
     """Read every file of an evaluation folder and check it against the file contract.
 
@@ -195,5 +213,6 @@ def read_evaluation_folder(folder: str | Path) -> EvaluationFolder:
         path=folder,
         programs=programs,
         run=_read_run(folder),
+        corrections=_read_corrections(folder),
         **{name.removesuffix(".csv"): frame for name, frame in tables.items()},
     )

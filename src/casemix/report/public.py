@@ -1,8 +1,8 @@
 """Copies of an evaluation's tables for public release, with small counts hidden.
 
-Only tables of programs and groups are copied; the record-level files (recipients.csv and
-exclusions.csv, one row per recipient) are never part of a public release, and excluded
-records are published as counts per reason instead.
+Only tables of programs and groups are copied; the record-level files (recipients.csv,
+exclusions.csv and corrections.csv, one row per recipient) are never part of a public release:
+excluded records are published as counts per reason and corrections as counts per kind.
 """
 
 from __future__ import annotations
@@ -12,10 +12,11 @@ from pathlib import Path
 import pandas as pd
 
 from casemix._io import write_csv
+from casemix.data.records import count_by_kind
 from casemix.report.folder import read_csv_as_written, read_evaluation_folder
 from casemix.report.suppress import check_threshold, suppress_counts
 
-__all__ = ["PUBLIC_COUNTS", "exclusions_by_reason", "write_public_tables"]
+__all__ = ["PUBLIC_COUNTS", "corrections_by_kind", "exclusions_by_reason", "write_public_tables"]
 
 PUBLIC_COUNTS = {
     "programs.csv": ("recipients", "observed"),
@@ -24,6 +25,7 @@ PUBLIC_COUNTS = {
     "casemix.csv": (),
     "coefficients.csv": (),
     "exclusions_by_reason.csv": ("records",),
+    "corrections_by_kind.csv": ("records",),
     "out_of_range.csv": ("recipients",),
 }
 """Public file -> its count columns (the ones suppressed)."""
@@ -45,14 +47,12 @@ def exclusions_by_reason(exclusions: pd.DataFrame) -> pd.DataFrame:
     pandas.DataFrame
         Columns ``reason`` (the kind), ``records``.
     """
-    counts = (
-        exclusions.groupby(exclusions["kind"].rename("reason"), sort=True)
-        .size()
-        .rename("records")
-        .reset_index()
-    )
-    return counts.sort_values(["records", "reason"], ascending=[False, True], kind="stable",
-                              ignore_index=True)
+    return count_by_kind(exclusions, "reason")
+
+
+def corrections_by_kind(corrections: pd.DataFrame) -> pd.DataFrame:
+    """Count corrections of kept records per kind (``correction``, ``records``), as above."""
+    return count_by_kind(corrections, "correction")
 
 
 def write_public_tables(folder: str | Path, out: str | Path, n: int) -> Path:
@@ -82,6 +82,8 @@ def write_public_tables(folder: str | Path, out: str | Path, n: int) -> Path:
         "coefficients.csv": data.coefficients,
         "exclusions_by_reason.csv": exclusions_by_reason(data.exclusions),
     }
+    if data.corrections is not None:
+        tables["corrections_by_kind.csv"] = corrections_by_kind(data.corrections)
     extra = Path(folder) / "out_of_range.csv"
     if extra.is_file():  # written by newer evaluations; older folders do not have it
         tables["out_of_range.csv"] = read_csv_as_written(extra, ["program"])

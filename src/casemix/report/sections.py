@@ -196,7 +196,9 @@ def evaluated_section(data: EvaluationFolder, options: ReportOptions) -> Section
         ("Verdict rules", _rules_text(run["rules"])),
         ("Records", f"{_count(counts.get('read'), options)} read, "
                     f"{_count(counts.get('kept'), options)} kept, "
-                    f"{_count(counts.get('excluded'), options)} excluded"),
+                    f"{_count(counts.get('excluded'), options)} excluded"
+                    + ("" if "corrected" not in counts else
+                       f"; {_count(counts['corrected'], options)} kept with a correction")),
     ]
     inputs = _inputs_frame(run.get("inputs"))
     body = [Markup(facts_html(facts))]
@@ -485,8 +487,39 @@ def data_quality_section(data: EvaluationFolder, options: ReportOptions) -> Sect
     note = Markup("<p>Follow-up completeness is the share of the follow-up that would be "
                   "possible up to the horizon or the cut-off that was actually observed.</p>")
     return Section("Data quality", _join(Markup("<h3>Records excluded, by reason</h3>"),
-                                         excluded, Markup("<h3>Follow-up per program</h3>"),
+                                         excluded,
+                                         Markup("<h3>Records kept with a correction</h3>"),
+                                         _corrections_html(data, options),
+                                         Markup("<h3>Follow-up per program</h3>"),
                                          note, Markup(table)), anchor="data-quality")
+
+
+_CORRECTION_WORDS = {
+    "event_after_last_seen": "Event after last seen (follow-up extended to the event)",
+    "event_after_cutoff": "Event after the cut-off (not counted; follow-up not lengthened)",
+    "last_seen_after_cutoff": "Last seen after the cut-off (follow-up ends at the cut-off)",
+}
+
+
+def _corrections_html(data: EvaluationFolder, options: ReportOptions) -> Markup:
+    """Corrections of kept records per program and kind (counts suppressed as elsewhere)."""
+    if data.corrections is None:
+        return Markup("<p>Not recorded: this folder was written by an older version "
+                      "without corrections.csv.</p>")
+    if data.corrections.empty:
+        return Markup("<p>No kept record needed a correction.</p>")
+    table = (data.corrections.groupby(["program", "kind"], sort=True).size()
+             .unstack("kind", fill_value=0))
+    kinds = [k for k in (*_CORRECTION_WORDS, *sorted(table.columns)) if k in table.columns]
+    table = table[list(dict.fromkeys(kinds))]
+    table["total"] = data.corrections.groupby("program", sort=True)["row"].nunique()
+    table = table.reset_index()
+    counts = [c for c in table.columns if c != "program"]
+    for column in counts:
+        table[column] = counts_text(table[column], options)
+    headers = {"program": "Program", "total": "Records corrected",
+               **{k: _CORRECTION_WORDS.get(k, k) for k in kinds}}
+    return Markup(table_html(table, headers=headers, numeric=counts))
 
 
 # -- 7. The reference model ----------------------------------------------------------------
@@ -522,21 +555,38 @@ def _p_value(p: float) -> str:
 # -- 8. Audit ------------------------------------------------------------------------------
 
 
+def _check_audit_folder(folder: Path, fingerprint: str | None) -> None:
+    absent = [n for n in ("findings.json", "audit.json") if not (folder / n).is_file()]
+    if absent:
+        raise InputError(
+            f"{folder}: not a complete audit folder ({' and '.join(absent)} missing), so an "
+            "empty list of findings would read like a clean audit. Pass the folder "
+            "`casemix audit ... --out DIR` wrote, or run the audit again."
+        )
+    try:
+        facts = json.loads((folder / "audit.json").read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"{folder / 'audit.json'}: not valid JSON ({err}); run the audit "
+                         "again.") from err
+    theirs = facts.get("model_fingerprint") if isinstance(facts, dict) else None
+    if fingerprint is not None and theirs != fingerprint:
+        raise InputError(
+            f"{folder}: the audit is of another reference model (fingerprint "
+            f"{str(theirs)[:12]}..., the evaluation's is {fingerprint[:12]}...); audit the "
+            "model the evaluation used, or leave --audit out."
+        )
+
+
 def _findings(folder: Path) -> list[str]:
-    json_path, text_path = folder / "findings.json", folder / "findings.txt"
-    if json_path.is_file():
-        try:
-            items = json.loads(json_path.read_text(encoding="utf-8"))
-        except json.JSONDecodeError as err:
-            raise InputError(f"{json_path}: not valid JSON ({err}); run the audit again.") from err
-        if not isinstance(items, list):
-            raise InputError(f"{json_path}: must hold a list of findings; run the audit again.")
-        return [i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
-                for i in items]
-    if text_path.is_file():
-        return [line.strip() for line in text_path.read_text(encoding="utf-8").splitlines()
-                if line.strip()]
-    return []
+    json_path = folder / "findings.json"
+    try:
+        items = json.loads(json_path.read_text(encoding="utf-8"))
+    except json.JSONDecodeError as err:
+        raise InputError(f"{json_path}: not valid JSON ({err}); run the audit again.") from err
+    if not isinstance(items, list):
+        raise InputError(f"{json_path}: must hold a list of findings; run the audit again.")
+    return [i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
+            for i in items]
 
 
 def table_section(path: Path) -> Markup:
@@ -554,12 +604,17 @@ def table_section(path: Path) -> Markup:
         title, Markup(table_html(frame.head(AUDIT_ROWS_SHOWN))), note)
 
 
-def audit_section(folder: str | Path) -> Section:
-    """The audit's findings and every CSV table of its folder, in file-name order."""
+def audit_section(folder: str | Path, fingerprint: str | None = None) -> Section:
+    """The audit's findings and every CSV table of its folder, in file-name order.
+
+    The folder must hold ``findings.json`` and ``audit.json``; with ``fingerprint`` (the
+    evaluation's model fingerprint), the audit's model must be the same one.
+    """
     folder = Path(folder)
     if not folder.is_dir():
         raise InputError(f"{folder}: audit folder not found; pass the folder `casemix audit` "
                          "wrote, or leave it out.")
+    _check_audit_folder(folder, fingerprint)
     findings = _findings(folder)
     listed = (Markup("<ul>{}</ul>").format(Markup("").join(
         Markup("<li>{}</li>").format(f) for f in findings))

@@ -33,6 +33,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
+from casemix.data.spec import closest
 from casemix.errors import InputError, RulesError
 from casemix.stats.hierarchy import PriorSettings, prior_settings_from_dict
 from casemix.stats.poisson import as_observed_expected
@@ -167,9 +168,10 @@ def rules_from_dict(
     allowed = list(_VERDICT_KEYS)
     unknown = sorted(set(values) - set(allowed))
     if unknown:
+        named = ", ".join(f"{key}{closest(key, allowed)}" for key in unknown)
         raise RulesError(
-            f"{source}: unknown key(s) in [verdict]: {', '.join(unknown)}. "
-            f"Allowed keys: {', '.join(allowed)}."
+            f"{source}: unknown key(s) in [verdict]: {named}. "
+            f"Allowed keys: {', '.join(allowed)} (see docs/rules.md)."
         )
     merged = {**Rules().to_dict(), **values}
     _check_values(merged, source)
@@ -192,11 +194,13 @@ def read_rules_document(path: str | Path) -> dict[str, Any]:
         raise RulesError(f"cannot read rules file {path}: {exc.strerror or exc}.") from exc
     except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
         raise RulesError(f"rules file {path} is not valid TOML: {exc}.") from exc
-    other = sorted(set(document) - {"verdict", "prior", "monitoring"})
+    tables = ["verdict", "prior", "monitoring"]
+    other = sorted(set(document) - set(tables))
     if other:
+        named = ", ".join(f"{key}{closest(key, tables)}" for key in other)
         raise RulesError(
-            f"rules file {path}: unknown top-level key(s) {', '.join(other)}; "
-            "only [verdict], [prior] and [monitoring] tables are allowed."
+            f"rules file {path}: unknown top-level key(s) {named}; "
+            "only [verdict], [prior] and [monitoring] tables are allowed (see docs/rules.md)."
         )
     return document
 
