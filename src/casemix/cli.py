@@ -401,6 +401,17 @@ def audit(
     ] = None,
     window_from: FromOption = None,
     window_to: ToOption = None,
+    workers: Annotated[
+        int, typer.Option("--workers", min=1, help="Local worker processes for the refits.")
+    ] = 2,
+    scheduler: Annotated[
+        str | None,
+        typer.Option(
+            "--scheduler",
+            envvar="CASEMIX_SCHEDULER",
+            help="Address of a Dask scheduler to run the refits on (needs casemix[cluster]).",
+        ),
+    ] = None,
 ) -> None:
     """Run the statistician's checks of a reference model (and of an evaluation, with --cohort).
 
@@ -425,6 +436,8 @@ def audit(
             cohort_records,
             bootstrap=bootstrap,
             seed=seed,
+            workers=workers,
+            scheduler=scheduler,
             progress=err.is_terminal,
             cutoff=cut,
             window=None if window == (None, None) else window,
