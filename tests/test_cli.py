@@ -624,7 +624,7 @@ def test_audit_writes_its_folder(demo_dir, network, tmp_path):
     out = tmp_path / "audit"
     result = invoke("audit", demo_dir / "reference.csv", "--model", demo_dir / "model.json",
                     "--cohort", demo_dir / "cohort.csv", "--cutoff", COHORT_CUTOFF,
-                    "--bootstrap", 20, "--seed", 1, "--out", out)
+                    "--bootstrap", 20, "--seed", 1, "--workers", 1, "--out", out)
     assert_exit(result, 0, f"audit written to {re.escape(str(out))}")
     findings = json.loads((out / "findings.json").read_text(encoding="utf-8"))
     assert findings

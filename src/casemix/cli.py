@@ -533,6 +533,17 @@ def audit(
     prior: Annotated[
         str | None, typer.Option("--prior", help="eb (default), eb-free, or fixed:SHAPE,RATE.")
     ] = None,
+    workers: Annotated[
+        int, typer.Option("--workers", min=1, help="Local worker processes for the refits.")
+    ] = 2,
+    scheduler: Annotated[
+        str | None,
+        typer.Option(
+            "--scheduler",
+            envvar="CASEMIX_SCHEDULER",
+            help="Address of a Dask scheduler to run the refits on (needs casemix[cluster]).",
+        ),
+    ] = None,
 ) -> None:
     """Run the statistician's checks of a reference model (and of an evaluation, with --cohort).
 
@@ -558,6 +569,8 @@ def audit(
             cohort,
             bootstrap=bootstrap,
             seed=seed,
+            workers=workers,
+            scheduler=scheduler,
             progress=err.is_terminal,
             cutoff=cut,
             window=None if window == (None, None) else window,

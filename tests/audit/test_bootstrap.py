@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from functools import partial
 from types import SimpleNamespace
 
 import numpy as np
@@ -15,9 +16,9 @@ from casemix.audit import (
     bootstrap_expected,
     delta_expected,
     mixture_interval,
-    parallel_map,
 )
 from casemix.errors import ConvergenceError, InputError
+from casemix.parallel import replicate_map
 from casemix.stats.shrinkage import fixed_prior
 from casemix.survival import fit_cox
 
@@ -109,12 +110,24 @@ def test_mixture_of_identical_components_is_the_component():
     assert (lower, upper) == pytest.approx((0.956741, 2.778799), abs=1e-6)
 
 
-def test_process_pool_gives_the_serial_result(model_b):
+def test_worker_processes_and_a_dask_cluster_give_the_serial_replicates(model_b):
+    distributed = pytest.importorskip("distributed")
     args = (model_b.data, model_b.fit, model_b.cohort, model_b.observed, fixed_prior(2, 2))
     serial = bootstrap_expected(*args, replicates=6, seed=2, map_fn=map)
-    pooled = bootstrap_expected(*args, replicates=6, seed=2)
+    pooled = bootstrap_expected(*args, replicates=6, seed=2)  # 2 local worker processes
     np.testing.assert_array_equal(serial.draws, pooled.draws)
-    assert list(parallel_map(abs, [-1, 2, -3], workers=2)) == [1, 2, 3]
+    # in-process cluster (threads), enough to show the scheduler sees the same seeds
+    with distributed.LocalCluster(
+        n_workers=2, threads_per_worker=1, processes=False, dashboard_address=None
+    ) as cluster:
+        clustered = bootstrap_expected(
+            *args, replicates=6, seed=2,
+            map_fn=partial(replicate_map, scheduler=cluster.scheduler_address),
+        )  # fmt: skip
+    np.testing.assert_array_equal(serial.draws, clustered.draws)
+    # a different seed gives different replicates, so the equalities above can fail
+    other = bootstrap_expected(*args, replicates=6, seed=3, map_fn=map)
+    assert not np.array_equal(serial.draws, other.draws)
 
 
 def test_delta_method_gradient_and_simulation(model_b):

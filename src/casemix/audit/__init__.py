@@ -6,7 +6,6 @@ from casemix.audit.bootstrap import (
     bootstrap_expected,
     delta_expected,
     mixture_interval,
-    parallel_map,
     resample_indices,
 )
 from casemix.audit.calibration import (
@@ -49,7 +48,6 @@ __all__ = [
     "leave_one_program_out",
     "mixture_interval",
     "overdispersion",
-    "parallel_map",
     "ph_test",
     "prior_sensitivity",
     "resample_indices",

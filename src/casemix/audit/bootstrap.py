@@ -10,9 +10,9 @@ matrix rows, and recomputes every program's E, baseline included; each program's
 hazard ratio is then the equal-weight mixture of Gamma(a + O, b + E_b) over the replicates (the
 prior held at the evaluation's), whose quantiles are found by root finding on the mixture CDF.
 
-Replicates run through one map function (:func:`parallel_map`: a process pool, 2 workers by
-default); pass any ``map_fn(func, items)`` with the semantics of the built-in ``map`` (for
-example a cluster engine's) instead. Every replicate draws from its own child of
+Replicates run through one map function (:func:`casemix.parallel.replicate_map`: joblib
+worker processes, or a Dask cluster); pass any ``map_fn(func, items)`` with the semantics of
+the built-in ``map`` instead. Every replicate draws from its own child of
 ``numpy.random.SeedSequence(seed)``, so results do not depend on the map or the worker count.
 """
 
@@ -20,8 +20,7 @@ from __future__ import annotations
 
 import sys
 import warnings
-from collections.abc import Callable, Iterable, Iterator
-from concurrent.futures import ProcessPoolExecutor
+from collections.abc import Callable, Iterable
 from dataclasses import dataclass
 from typing import Any
 
@@ -30,6 +29,7 @@ import pandas as pd
 from scipy import stats
 
 from casemix.errors import ConvergenceError, ConvergenceWarning, InputError
+from casemix.parallel import replicate_map
 from casemix.stats.poisson import check_level
 from casemix.stats.shrinkage import mixture_quantile, posterior
 from casemix.survival import fit_cox
@@ -40,12 +40,8 @@ __all__ = [
     "bootstrap_expected",
     "delta_expected",
     "mixture_interval",
-    "parallel_map",
     "resample_indices",
 ]
-
-DEFAULT_WORKERS = 2
-
 
 @dataclass(frozen=True)
 class ProgramArrays:
@@ -123,36 +119,6 @@ class BootstrapResult:
     replicates: int
     failed: int
     seed: int
-
-
-def parallel_map(
-    func: Callable, items: Iterable, *, workers: int = DEFAULT_WORKERS, chunksize: int | None = None
-) -> Iterator:
-    """Apply ``func`` to every item in ``workers`` processes, yielding results in order.
-
-    Parameters
-    ----------
-    func : callable
-        Picklable (a module-level function or an instance of a module-level class).
-    items : iterable
-    workers : int, default 2
-        1 runs in this process.
-    chunksize : int, optional
-        Items sent to a worker at once (default: about 16 chunks per worker, so that a
-        progress bar moves).
-
-    Yields
-    ------
-    object
-        ``func(item)`` for each item, in the order of ``items``, as they become available.
-    """
-    items = list(items)
-    if workers <= 1 or len(items) <= 1:
-        yield from map(func, items)
-        return
-    chunksize = chunksize or max(1, len(items) // (16 * workers))
-    with ProcessPoolExecutor(max_workers=workers) as pool:
-        yield from pool.map(func, items, chunksize=chunksize)
 
 
 def _with_progress(results: Iterable, total: int, label: str, show: bool) -> list:
@@ -328,8 +294,8 @@ def bootstrap_expected(
     seed : int, default 0
     level : float, default 0.95
     map_fn : callable, optional
-        ``map_fn(func, items)`` returning the results in order; default :func:`parallel_map`
-        with 2 workers.
+        ``map_fn(func, items)`` returning the results in order; default
+        :func:`casemix.parallel.replicate_map` (2 local worker processes).
     progress : bool, default False
         Show a progress bar (only on a terminal).
 
@@ -342,7 +308,7 @@ def bootstrap_expected(
     observed = np.asarray(observed, dtype=float)
     task = _Refit(data.time, data.event, data.X, data.strata, fit.ties, fit.coef, cohort)
     children = np.random.SeedSequence(seed).spawn(replicates)
-    mapper = parallel_map if map_fn is None else map_fn
+    mapper = replicate_map if map_fn is None else map_fn
     results = _with_progress(mapper(task, children), replicates, "bootstrap", progress)
     good = [r for r in results if r is not None]
     if len(good) < 2:

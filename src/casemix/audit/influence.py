@@ -15,7 +15,8 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
-from casemix.audit.bootstrap import ProgramArrays, parallel_map
+from casemix.audit.bootstrap import ProgramArrays
+from casemix.parallel import replicate_map
 from casemix.survival import fit_cox
 
 __all__ = ["leave_one_program_out"]
@@ -68,7 +69,7 @@ def leave_one_program_out(
     observed : array_like of int, shape (k,)
         Observed events per program, in the order of ``cohort.programs``.
     map_fn : callable, optional
-        ``map_fn(func, items)``; default :func:`parallel_map` with 2 workers.
+        ``map_fn(func, items)``; default :func:`casemix.parallel.replicate_map`.
 
     Returns
     -------
@@ -84,7 +85,7 @@ def leave_one_program_out(
     task = _Without(
         data.time, data.event, data.X, data.strata, reference_program, fit.ties, fit.coef, cohort
     )
-    mapper = parallel_map if map_fn is None else map_fn
+    mapper = replicate_map if map_fn is None else map_fn
     refits = dict(zip(present, mapper(task, present), strict=True))
     rows = []
     for j, program in enumerate(cohort.programs):

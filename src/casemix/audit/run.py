@@ -11,6 +11,7 @@ from __future__ import annotations
 
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -43,6 +44,7 @@ from casemix.data.records import Records, read_records
 from casemix.errors import InputError
 from casemix.evaluation.evaluate import evaluate
 from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.parallel import DEFAULT_WORKERS, replicate_map
 from casemix.report.audit_page import audit_html
 from casemix.stats.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
 from casemix.stats.multiplicity import fdr_table
@@ -315,6 +317,8 @@ def run_audit(
     bootstrap: int = 200,
     seed: int = 0,
     map_fn: Callable | None = None,
+    workers: int = DEFAULT_WORKERS,
+    scheduler: str | None = None,
     progress: bool = False,
     cutoff=None,
     window=None,
@@ -338,7 +342,13 @@ def run_audit(
     seed : int, default 0
         Seed of the bootstrap; the same seed gives the same tables.
     map_fn : callable, optional
-        ``map_fn(func, items)`` used for the refits (default: a 2-process pool).
+        ``map_fn(func, items)`` used for the refits; default
+        :func:`casemix.parallel.replicate_map` with ``workers`` and ``scheduler``.
+    workers : int, default 2
+        Local worker processes for the refits (each with one BLAS thread).
+    scheduler : str, optional
+        Address of a Dask scheduler to run the refits on instead (default: the
+        ``CASEMIX_SCHEDULER`` environment variable, else local processes).
     progress : bool, default False
         Show a progress bar on a terminal.
     cutoff, window : optional
@@ -398,6 +408,8 @@ def run_audit(
                 evaluation.programs, link
             ),
         }  # fmt: skip
+        if map_fn is None:
+            map_fn = partial(replicate_map, workers=workers, scheduler=scheduler)
         options = {"bootstrap": bootstrap, "seed": seed, "map_fn": map_fn, "progress": progress}
         program_tables, program_facts = _program_checks(model, data, evaluation, arrays, options)
         tables = _merge(tables, _cohort_calibration(evaluation, model, arrays))

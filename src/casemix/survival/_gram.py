@@ -2,7 +2,9 @@
 
 numpy has no BLAS call for a diagonally weighted Gram matrix; forming ``X * v[:, None]`` at
 once would double peak memory at registry scale (n = 10^6, p = 20 is 160 MB per copy), so the
-product is taken over blocks of rows, each one BLAS call.
+product is taken over blocks of rows. With v >= 0 each block is scaled by sqrt(v), so that
+its product with itself is a symmetric rank-k update (numpy hands ``Y.T @ Y`` to BLAS syrk),
+half the operations of a general product and, measured at 10^6 x 20, about half the time.
 """
 
 from __future__ import annotations
@@ -20,7 +22,7 @@ def weighted_gram(X: np.ndarray, v: np.ndarray, center: np.ndarray | None = None
     ----------
     X : ndarray, shape (n, p)
     v : ndarray, shape (n,)
-        Row weights.
+        Row weights, >= 0.
     center : ndarray, shape (p,), optional
         Subtracted from every row first (default: nothing).
 
@@ -30,11 +32,12 @@ def weighted_gram(X: np.ndarray, v: np.ndarray, center: np.ndarray | None = None
     """
     p = X.shape[1]
     out = np.zeros((p, p))
+    root = np.sqrt(v)
     for start in range(0, X.shape[0], BLOCK_ROWS):
         block = X[start : start + BLOCK_ROWS]
-        if center is not None:
-            block = block - center
-        out += (block * v[start : start + BLOCK_ROWS, None]).T @ block
+        block = block - center if center is not None else block.copy()
+        block *= root[start : start + BLOCK_ROWS, None]
+        out += block.T @ block
     return out
 
 
@@ -47,29 +50,26 @@ def weighted_variance(X: np.ndarray, w: np.ndarray, center: np.ndarray) -> np.nd
     return out / w.sum()
 
 
-def weighted_group_sums(
-    X: np.ndarray, v: np.ndarray, starts: np.ndarray, rows: np.ndarray | None = None
-) -> np.ndarray:
-    """Return the sums of v_k x_rows[k] over consecutive groups of k beginning at ``starts``.
+def weighted_group_sums(X: np.ndarray, v: np.ndarray, group: np.ndarray, n_groups: int):
+    """Return, for each group g, the sum of v_i x_i over the rows i with group[i] = g.
 
-    Done as one sparse (groups x rows) by dense product, which reads X once and needs no
-    weighted or reordered copy of it.
+    Done as one sparse (groups x rows) by dense product, which needs no weighted or reordered
+    copy of X. The sparse matrix is stored by column (one entry per row of X, in X's own
+    order), so that the product reads X from start to end rather than in group order.
 
     Parameters
     ----------
     X : ndarray, shape (n, p)
-    v : ndarray, shape (m,)
-        Weights, in the order of ``rows``.
-    starts : ndarray of int, shape (g,)
-        Position in ``rows`` where each group begins, ascending, starting at 0.
-    rows : ndarray of int, shape (m,), optional
-        Rows of X in group order (default: 0 .. n - 1, so m = n).
+    v : ndarray, shape (n,)
+        Row weights.
+    group : ndarray of int, shape (n,)
+        Group of each row, in 0 .. n_groups - 1.
+    n_groups : int
 
     Returns
     -------
-    ndarray, shape (g, p)
+    ndarray, shape (n_groups, p)
     """
-    rows = np.arange(X.shape[0]) if rows is None else rows
-    indptr = np.append(starts, rows.size)
-    groups = sparse.csr_matrix((v, rows, indptr), shape=(starts.size, X.shape[0]))
+    n = X.shape[0]
+    groups = sparse.csc_matrix((v, group, np.arange(n + 1)), shape=(n_groups, n))
     return np.asarray(groups @ X)

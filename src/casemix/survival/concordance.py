@@ -2,9 +2,11 @@
 
 Written by hand for speed at registry scale: lifelines' ``concordance_index`` is O(n log n)
 too, but it walks the subjects in a Python loop over a binary tree (measured here: 19 s at
-10^6 rows with tied times on a 2-core machine, against under 4 s for this version).
-Here the pair counts come from a bottom-up merge sort whose every level is a handful of
-whole-array numpy operations (log2 n levels).
+10^6 rows with tied times on a 2-core machine). Here every step is a whole-array numpy
+operation: two sorts by risk score, then one pass per bit of the (time, status) rank, in
+which a stable partition on that bit (a most-significant-digit radix sort) counts the pairs
+whose ranks first differ at that bit. With follow-up in whole days that is about 12 passes
+whatever n is; with all times distinct, about log2(2n).
 
 Pair conventions (the same as lifelines and scikit-survival)
 -------------------------------------------------------------
@@ -13,6 +15,11 @@ Pair conventions (the same as lifelines and scikit-survival)
   events at the same time, and two censored subjects, are not.
 * The subject that fails first should have the higher risk score: such a pair is
   concordant, the reverse discordant; equal risk scores count 1/2.
+
+References
+----------
+Harrell FE, Califf RM, Pryor DB, Lee KL, Rosati RA. Evaluating the yield of medical tests.
+JAMA 1982;247:2543-2546.
 """
 
 from __future__ import annotations
@@ -46,46 +53,55 @@ class Concordance:
     comparable: int
 
 
-def _smaller_after(values: np.ndarray) -> np.ndarray:
-    """For each position i, count positions j > i with values[j] < values[i].
+def _smaller_after(values: np.ndarray, flagged: np.ndarray) -> int:
+    """Count pairs of positions i < j with values[j] < values[i] and i flagged.
 
-    Bottom-up merge sort: at block size s, each left block counts the elements of its right
-    neighbour that are smaller by one global ``searchsorted`` (blocks are kept sorted and
-    offset by their pair number so that the whole array of right blocks is sorted).
+    Most-significant bit first, the array is kept stably partitioned by the bits seen so far
+    (groups of equal prefix, positions ascending within a group). A pair whose values first
+    differ at bit b lies in one group at that bit, i with a 1 there and j with a 0 after it:
+    each flagged i with a 1 adds the zeros that follow it in its group. Then the group is
+    split, zeros first, both halves keeping their order.
 
     Parameters
     ----------
     values : ndarray of int, shape (n,)
-        Non-negative integer codes (dense ranks).
+        Non-negative integer codes (dense ranks), n >= 1.
+    flagged : ndarray of bool, shape (n,)
 
     Returns
     -------
-    ndarray of int64, shape (n,)
+    int
     """
     n = values.size
-    span = np.int64(values.max()) + 1 if n else np.int64(1)
-    counts = np.zeros(n, dtype=np.int64)
-    order = np.arange(n)  # order[k]: element at position k; sorted within blocks of size s
-    position = np.arange(n)
-    size = 1
-    while size < n:
-        block = position // size
-        pair = (block // 2).astype(np.int64)
-        key = pair * span + values[order]
-        right = (block % 2).astype(bool)
-        right_keys = key[right]
-        left = ~right
-        counts[order[left]] += np.searchsorted(right_keys, key[left], side="left") - (
-            np.searchsorted(right_keys, pair[left] * span, side="left")
-        )
-        # a left block precedes its right block, so a stable sort by key merges each pair
-        order = order[np.argsort(key, kind="stable")]
-        size *= 2
-    return counts
-
-
-def _dense_rank(values: np.ndarray) -> np.ndarray:
-    return np.unique(values, return_inverse=True)[1].reshape(-1)
+    span = int(values.max()) + 1
+    bits = max(1, (span - 1).bit_length())
+    kind = np.int32 if 2 * max(n, span) < 2**31 else np.int64
+    # below[u]: number of values < u (u up to 2^bits, so every group end has an entry)
+    below = np.full((1 << bits) + 1, n, dtype=kind)
+    below[0] = 0
+    np.cumsum(np.bincount(values, minlength=span), out=below[1 : span + 1])
+    packed = (values.astype(kind) << 1) | flagged.astype(kind)  # the flag rides in bit 0
+    position = np.arange(n, dtype=kind)
+    zeros_before = np.zeros(n + 1, dtype=kind)
+    total = 0
+    for b in range(bits - 1, -1, -1):
+        one = (packed >> (b + 1)) & 1
+        group_low = (packed >> (b + 2)) << (b + 1)  # smallest value of the element's group
+        group_start = below[group_low]
+        np.cumsum(1 - one, out=zeros_before[1:])
+        counted = np.flatnonzero(one & packed)
+        group_end = below[group_low[counted] + (2 << b)]
+        total += int((zeros_before[group_end] - zeros_before[counted + 1]).sum(dtype=np.int64))
+        # new place: zeros keep their rank among the group's zeros, ones go after all zeros
+        zero_place = zeros_before[:-1] - zeros_before[group_start]
+        zero_place += group_start
+        one_place = below[group_low + (1 << b)]
+        one_place += position
+        one_place -= zero_place
+        moved = np.empty_like(packed)
+        moved[np.where(one.astype(bool), one_place, zero_place)] = packed
+        packed = moved
+    return total
 
 
 def _check_risk(risk, n: int) -> np.ndarray:
@@ -100,6 +116,16 @@ def _check_risk(risk, n: int) -> np.ndarray:
             f"{int(np.flatnonzero(bad)[0])}); score every recipient before computing C"
         )
     return risk
+
+
+def _by_risk(risk: np.ndarray, key: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Order by risk descending, then key descending; and where each risk value starts."""
+    order = np.argsort(-risk)
+    ranked = risk[order]
+    new_risk = np.r_[True, ranked[1:] != ranked[:-1]]
+    # the sort left equal risks in any order; a second, nearly sorted pass orders their keys
+    combined = np.cumsum(new_risk, dtype=np.int64) * (int(key.max()) + 1) - key[order]
+    return order[np.argsort(combined, kind="stable")], new_risk
 
 
 def concordance(time, event, risk) -> Concordance:
@@ -117,27 +143,30 @@ def concordance(time, event, risk) -> Concordance:
     Concordance
     """
     time, event = as_time_event(time, event)
-    risk = _check_risk(risk, time.size)
-    # order pairs by (time, censored): j is comparable with event i exactly when its key is
-    # strictly larger than i's (later time, or the same time and censored)
-    censored = 1 - event.astype(np.int64)
-    key = _dense_rank(_dense_rank(time).astype(np.int64) * 2 + censored)
-    score = _dense_rank(risk)
-    # within equal keys put lower scores first, so no element after i with i's key is smaller
-    order = np.lexsort((score, key))
-    is_event = event[order].astype(bool)
-    smaller = _smaller_after(score[order])[is_event]
+    n = time.size
+    risk = _check_risk(risk, n)
+    if n == 0:
+        return Concordance(float("nan"), 0, 0, 0, 0)
+    # key orders pairs by (time, censored): j is comparable with event i exactly when its key
+    # is strictly larger than i's (later time, or the same time and censored)
+    is_event = event.astype(bool)
+    key = np.searchsorted(np.unique(time), time) * 2 + (~is_event)
+    span = int(key.max()) + 1
+    at_key = np.bincount(key, minlength=span)
+    later = n - np.cumsum(at_key)  # subjects with a strictly larger key
+    n_comp = int(np.bincount(key[is_event], minlength=span) @ later)
+    # by risk descending, every j after i has a risk <= i's; equal risks are ordered by key
+    # descending, so the j with i's risk and a larger key come before i (tied, not concordant)
+    order, new_risk = _by_risk(risk, key)
     key_sorted = key[order]
-    comparable = time.size - np.searchsorted(key_sorted, key_sorted[is_event], side="right")
-    # equal scores with a strictly larger key: sort by (score, key) and count
-    combined = score.astype(np.int64) * (np.int64(key.max()) + 1) + key
-    combined_sorted = np.sort(combined)
-    ev_score = score[order][is_event].astype(np.int64)
-    end_of_score = np.searchsorted(
-        combined_sorted, (ev_score + 1) * (np.int64(key.max()) + 1), side="left"
-    )
-    tied = end_of_score - np.searchsorted(combined_sorted, combined[order][is_event], "right")
-    n_conc, n_comp, n_tied = int(smaller.sum()), int(comparable.sum()), int(tied.sum())
+    event_sorted = is_event[order]
+    n_conc = _smaller_after(span - 1 - key_sorted, event_sorted)
+    new_run = new_risk.copy()
+    new_run[1:] |= key_sorted[1:] != key_sorted[:-1]
+    position = np.arange(n)
+    risk_start = np.maximum.accumulate(np.where(new_risk, position, 0))
+    run_start = np.maximum.accumulate(np.where(new_run, position, 0))
+    n_tied = int((run_start - risk_start)[event_sorted].sum())
     n_disc = n_comp - n_conc - n_tied
     c = (n_conc + 0.5 * n_tied) / n_comp if n_comp else float("nan")
     return Concordance(c, n_conc, n_disc, n_tied, n_comp)

@@ -244,6 +244,8 @@ class _RiskSets:
         new_group[1:] = (np.diff(self.time) != 0) | (np.diff(self.codes) != 0)
         self.starts = np.flatnonzero(new_group)
         self.group_of_row = np.cumsum(new_group) - 1
+        self.group_of_x_row = np.empty_like(self.group_of_row)  # the same, in X's row order
+        self.group_of_x_row[order] = self.group_of_row
         n_groups = self.starts.size
         self.group_code = self.codes[self.starts]
         self.group_time = self.time[self.starts]
@@ -287,24 +289,48 @@ class _RiskSets:
         return total[1:] - total[self.start_of_group]
 
 
-def _evaluate(rs: _RiskSets, beta: np.ndarray, *, derivatives: bool = True):
-    """Log partial likelihood, score and information at ``beta`` (centred covariates)."""
+@dataclass(frozen=True)
+class _Likelihood:
+    """The log partial likelihood at one beta and the risk-set sums behind it (internal)."""
+
+    loglik: float
+    r: np.ndarray  # exp(eta - shift) times the case weights, in sorted order
+    shift: float
+    R0: np.ndarray  # per group sums of r
+    S0: np.ndarray  # risk-set sums of r at the event groups
+    E0: np.ndarray  # per event group sums of r over its events
+    den: np.ndarray  # per tie term: S0 - a E0
+
+    @property
+    def baseline_denominator(self) -> np.ndarray:
+        return self.S0 * np.exp(self.shift)
+
+
+def _likelihood(rs: _RiskSets, beta: np.ndarray) -> _Likelihood:
+    """Log partial likelihood at ``beta`` (centred covariates)."""
     eta = (rs.X @ beta)[rs.order] - rs.center @ beta
     shift = eta.max()
     r = rs.weights * np.exp(eta - shift)
     R0 = np.add.reduceat(r, rs.starts)
     S0 = rs.suffix(R0)[rs.event_groups]
+    E0 = np.add.reduceat(r[rs.event_rows], rs.event_starts)
+    den = S0[rs.term_k] - rs.term_a * E0[rs.term_k]
+    loglik = rs.weighted_x_eta_rows @ eta[rs.event_rows] - rs.term_c @ (np.log(den) + shift)
+    return _Likelihood(loglik, r, shift, R0, S0, E0, den)
+
+
+def _derivatives(rs: _RiskSets, lik: _Likelihood) -> tuple[np.ndarray, np.ndarray]:
+    """Score and observed information at the beta of ``lik``, reusing its risk-set sums."""
+    r, R0, den = lik.r, lik.R0, lik.den
     re = r[rs.event_rows]
-    E0 = np.add.reduceat(re, rs.event_starts)
-    k, a, c = rs.term_k, rs.term_a, rs.term_c
-    den = S0[k] - a * E0[k]
-    loglik = rs.weighted_x_eta_rows @ eta[rs.event_rows] - c @ (np.log(den) + shift)
-    if not derivatives:
-        return loglik, None, None, S0 * np.exp(shift)
-    R1 = weighted_group_sums(rs.X, r, rs.starts, rs.order) - np.outer(R0, rs.center)
+    r_rows = np.empty_like(r)
+    r_rows[rs.order] = r
+    R1 = weighted_group_sums(rs.X, r_rows, rs.group_of_x_row, rs.starts.size)
+    R1 -= np.outer(R0, rs.center)
     S1 = rs.suffix(R1)[rs.event_groups]
-    E1 = weighted_group_sums(rs.Xe, re, rs.event_starts)
-    K = S0.size
+    K = lik.S0.size
+    E1 = weighted_group_sums(rs.Xe, re, rs.event_index_of_row, K)
+    k, a, c = rs.term_k, rs.term_a, rs.term_c
     A = np.bincount(k, c / den, minlength=K)
     B = np.bincount(k, c * a / den, minlength=K)
     score = rs.score_const - A @ S1 + B @ E1
@@ -313,6 +339,7 @@ def _evaluate(rs: _RiskSets, beta: np.ndarray, *, derivatives: bool = True):
     gamma = np.bincount(k, c * a**2 / den**2, minlength=K)
     per_group = np.zeros(rs.starts.size)
     per_group[rs.event_groups] = A
+    # v >= 0: an event row's B share never exceeds the A of its own group (0 <= a < 1)
     v = r * rs.prefix(per_group)[rs.group_of_row]
     v[rs.event_rows] -= re * B[rs.event_index_of_row]
     v_rows = np.empty_like(v)
@@ -325,7 +352,17 @@ def _evaluate(rs: _RiskSets, beta: np.ndarray, *, derivatives: bool = True):
         + cross.T
         - (E1 * gamma[:, None]).T @ E1
     )
-    return loglik, score, info, S0 * np.exp(shift)
+    return score, info
+
+
+def _evaluate(rs: _RiskSets, beta: np.ndarray):
+    """Log partial likelihood, score, information and baseline denominators at ``beta``."""
+    return _complete(rs, _likelihood(rs, beta))
+
+
+def _complete(rs: _RiskSets, lik: _Likelihood):
+    score, info = _derivatives(rs, lik)
+    return lik.loglik, score, info, lik.baseline_denominator
 
 
 def _solve(info: np.ndarray, score: np.ndarray) -> np.ndarray:
@@ -388,8 +425,8 @@ def _newton(rs, beta, start, max_iter, tol):
             return beta, loglik, score, info, n_iter - 1, True, S0
         for _ in range(40):
             trial = beta + step
-            trial_loglik = _evaluate(rs, trial, derivatives=False)[0]
-            if np.isfinite(trial_loglik) and trial_loglik >= loglik - 1e-12 * abs(loglik):
+            lik = _likelihood(rs, trial)
+            if np.isfinite(lik.loglik) and lik.loglik >= loglik - 1e-12 * abs(loglik):
                 break
             step = step / 2
         else:
@@ -398,7 +435,7 @@ def _newton(rs, beta, start, max_iter, tol):
                 "covariates for extreme values or near-collinearity"
             )
         beta = trial
-        loglik, score, info, S0 = _evaluate(rs, beta)
+        loglik, score, info, S0 = _complete(rs, lik)  # the accepted trial's sums, reused
     converged = bool(score @ _solve(info, score) < tol)
     return beta, loglik, score, info, max_iter, converged, S0
 
