@@ -72,7 +72,9 @@ def counts_text(values: Sequence[float], options: ReportOptions) -> list[str]:
     """Counts as text, suppressed when asked; missing counts show as an en dash."""
     out = []
     for value in values:
-        if pd.isna(value):
+        if isinstance(value, str):  # already text (a public release's "<N" or "withheld")
+            out.append(value)
+        elif pd.isna(value):
             out.append(MISSING)
         elif options.suppress_below and 1 <= value < options.suppress_below:
             out.append(suppress_value(value, options.suppress_below))
