@@ -1,35 +1,18 @@
-"""Tests of the public copies of an evaluation's tables."""
+"""Tests of the exclusion counts per reason (the form in which exclusions are published)."""
 
 from __future__ import annotations
 
 import pandas as pd
 
-from casemix.report import write_public_tables
+from casemix.report.public import exclusions_by_reason
 
 
-def test_public_tables_hide_small_counts_and_leave_out_records(evaluation_folder, tmp_path):
-    out = write_public_tables(evaluation_folder, tmp_path / "public", 11)
-    assert sorted(p.name for p in out.iterdir()) == [
-        "casemix.csv", "coefficients.csv", "curves.csv", "exclusions_by_reason.csv",
-        "followup.csv", "programs.csv"]  # no recipient-level file
-    programs = pd.read_csv(out / "programs.csv", dtype=str)
-    source = pd.read_csv(evaluation_folder / "programs.csv", dtype=str)
-    small = programs.loc[programs["program"] == "LV05"].iloc[0]  # 8 recipients in the fixture
-    assert source.loc[source["program"] == "LV05", "recipients"].item() == "8"
-    assert small["recipients"] == "<11"
-    large = programs.loc[programs["program"] == "LV03"].iloc[0]
-    assert large["recipients"] == "320"
-    reasons = pd.read_csv(out / "exclusions_by_reason.csv", dtype=str)
+def test_exclusions_are_counted_per_kind_most_frequent_first(evaluation_folder):
+    exclusions = pd.read_csv(evaluation_folder / "exclusions.csv", dtype=str)
+    reasons = exclusions_by_reason(exclusions)
     # the fixture excludes 4 records: 2 for a missing program, then 1 each (by reason)
     assert reasons.to_dict("list") == {
         "reason": ["missing program", "event before transplant", "transplant after cut-off"],
-        "records": ["<11", "<11", "<11"]}
-    curves = pd.read_csv(out / "curves.csv", dtype=str)
-    assert "<11" in set(curves["at_risk"])
-
-
-def test_public_exclusion_counts_carry_no_record_values(evaluation_folder, tmp_path):
-    # The per-record reason texts hold dates; the public counts use only the kinds.
-    out = write_public_tables(evaluation_folder, tmp_path / "public", 2)
-    text = (out / "exclusions_by_reason.csv").read_text()
-    assert "2021-01-02" not in text and "2025-08-31" not in text
+        "records": [2, 1, 1]}
+    # the per-record reason texts hold dates; the counts use only the kinds
+    assert not reasons.astype(str).apply(lambda c: c.str.contains("2021-01-02")).any().any()
