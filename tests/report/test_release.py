@@ -19,7 +19,7 @@ from __future__ import annotations
 import json
 import re
 import shutil
-from html.parser import HTMLParser
+from html import unescape
 from pathlib import Path
 
 import numpy as np
@@ -30,7 +30,7 @@ from scipy import stats
 from casemix import demo
 from casemix._io import write_csv
 from casemix.evaluation.evaluate import evaluate
-from casemix.report import write_public_release
+from casemix.report import render_report, write_public_release
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts
 from casemix.stats.shrinkage import Prior
@@ -73,28 +73,16 @@ def _near(estimate: float | None) -> tuple | None:
     return (round(estimate) - 1, round(estimate) + 1)
 
 
-class _Text(HTMLParser):
-    def __init__(self):
-        super().__init__()
-        self.parts: list[str] = []
-
-    def handle_data(self, data):
-        self.parts.append(data)
-
-
 def _report_facts(html: str) -> dict[str, dict]:
     """Per program, the numbers its block in the report states (rounded as printed)."""
-    parser = _Text()
-    parser.feed(html)
-    text = " ".join(parser.parts)
     facts = {}
-    pattern = (r"(?P<code>\S+)\s+\S.*? · (?P<n>\S+) recipients · observed (?P<o>\S+) · "
-               r"expected (?P<e>\S+) · O/E (?P<oe>\S+)")
-    for m in re.finditer(pattern, text):
-        facts[m["code"]] = {"n": m["n"], "o": m["o"], "e": _num(m["e"]), "oe": _num(m["oe"])}
-    for m in re.finditer(r"(\d+) more events? at the current expected count \(E = ([\d.]+)\)",
-                         text):
-        facts.setdefault("what_if", []).append((int(m[1]), float(m[2])))
+    for code, line in re.findall(r'<div class="program" id="[^"]+"><h3>(.*?)</h3><p>(.*?)</p>',
+                                 html):
+        text = unescape(re.sub(r"<[^>]+>", "", line))
+        m = re.search(r"(?P<n>\S+) recipients · observed (?P<o>\S+) · expected (?P<e>\S+) · "
+                      r"O/E (?P<oe>\S+).*? · hazard ratio (?P<hr>\S+)", text)
+        facts[unescape(code)] = {"n": m["n"], "o": m["o"], "e": _num(m["e"]),
+                                 "oe": _num(m["oe"]), "hr": _num(m["hr"])}
     return facts
 
 
@@ -228,6 +216,10 @@ def attack(public: Path) -> list[dict]:
             fact = facts.get(code)
             if fact and fact["e"] is not None and fact["oe"] is not None:
                 claim(("observed", code), "report: E x O/E", _near(fact["e"] * fact["oe"]))
+            if fact and fact["e"] is not None and fact["hr"] is not None:
+                prior = run["prior"]
+                claim(("observed", code), "report: HR given the prior",
+                      _near(fact["hr"] * (prior["rate"] + fact["e"]) - prior["shape"]))
         if _hidden(row["recipients"]):
             for name, bounds in _n_derivations(row, run, curve, fu).items():
                 claim(("recipients", code), name, bounds)
@@ -298,6 +290,9 @@ def naive_release(folder: Path, out: Path) -> Path:
     reasons = exclusions_by_reason(pd.read_csv(folder / "exclusions.csv", dtype=str))
     write_csv(out / "exclusions_by_reason.csv", suppress_counts(reasons, ["records"], N))
     shutil.copy(folder / "run.json", out / "run.json")
+    # its report hid the count cells only: O/E, E and the hazard ratio are those of the
+    # internal report (the attacker reads only those numbers from the page)
+    (out / "report.html").write_text(render_report(folder), encoding="utf-8")
     return out
 
 
@@ -338,7 +333,8 @@ def test_the_attacker_recovers_counts_from_a_naive_release(demo_folder, small_ne
         assert len(cells) == hidden > 0, name  # every hidden event count comes back
         ways = {f["derivation"] for f in found}
         assert {"E x O/E", "HR given the prior", "O/E upper limit", "P(HR > margin)",
-                "n x (1 - observed survival)", "curve steps"} <= ways, (name, ways)
+                "n x (1 - observed survival)", "curve steps", "report: E x O/E",
+                "report: HR given the prior"} <= ways, (name, ways)
     assert any(f["cell"][0] == "at_risk" for f in found)  # from the drops of the curve
 
 
@@ -370,11 +366,13 @@ def test_a_total_gives_back_a_single_hidden_cell_unless_withheld(demo_folder, tm
 def test_the_attacker_recovers_nothing_from_the_public_release(network, request, tmp_path):
     folder = request.getfixturevalue(network)
     public = write_public_release(folder, N, tmp_path / "public")
-    claims = attack(public)
     assert successes(public, folder) == []
-    # the attacker did get to work: hidden cells exist and the report was read
-    assert any(c["cell"][0] == "observed" for c in claims) or (
-        pd.read_csv(public / "programs.csv", dtype=str)["observed"] == SMALL).any()
+    # the attacker did get to work: hidden cells exist and every program block was read
+    programs = pd.read_csv(public / "programs.csv", dtype=str)
+    assert (programs["observed"] == SMALL).sum() >= 3
+    facts = _report_facts((public / "report.html").read_text(encoding="utf-8"))
+    assert set(programs["program"]) <= set(facts)
+    assert any(f["hr"] is not None for f in facts.values())
 
 
 def test_public_files_hold_no_recipient_level_data(small_network, tmp_path):

@@ -42,6 +42,7 @@ from casemix.survival import kaplan_meier
 
 __all__ = [
     "DERIVED_COLUMNS",
+    "MIN_SPREAD",
     "PUBLIC_FILES",
     "WITHHELD",
     "PublicRelease",
@@ -49,7 +50,9 @@ __all__ = [
     "feasible_range",
     "hidden_candidates",
     "make_release",
+    "protect_total",
     "protected_programs",
+    "verdict_says_nothing",
 ]
 
 WITHHELD = "withheld"
@@ -160,9 +163,23 @@ def hidden_candidates(text: str, recipients_text: str, n: int) -> np.ndarray:
     return np.array([int(text)])
 
 
-def _verdict_is_uninformative(verdict: str, candidates: np.ndarray, expected: float,
-                              prior: Prior, rules) -> bool:
-    # Shown only if every count the reader cannot rule out gives this same verdict at E.
+def verdict_says_nothing(verdict: str, candidates: np.ndarray, expected: float,
+                         prior: Prior, rules) -> bool:
+    """True when every count a reader cannot rule out gives this same verdict at E.
+
+    Parameters
+    ----------
+    verdict : str
+        The program's verdict.
+    candidates : ndarray of int
+        The counts the public cell leaves open (:func:`hidden_candidates`).
+    expected : float
+        The program's E (withheld in the release: the check assumes the reader knows it).
+    prior : Prior
+        The published prior.
+    rules : Rules
+        The verdict rules.
+    """
     if candidates.size == 0:
         return False
     verdicts = assign_verdicts(candidates, np.full(candidates.size, expected), prior, rules)
@@ -185,8 +202,9 @@ def feasible_range(total: float, lower: np.ndarray, upper: np.ndarray) -> np.nda
         For each cell, the smallest and largest value consistent with the sum.
     """
     lower, upper = np.asarray(lower, float), np.asarray(upper, float)
-    low = np.maximum(lower, total - (upper.sum() - upper))
-    high = np.minimum(upper, total - (lower.sum() - lower))
+    others = ~np.eye(lower.size, dtype=bool)  # row i: every cell but i
+    low = np.maximum(lower, total - np.where(others, upper, 0.0).sum(axis=1))
+    high = np.minimum(upper, total - np.where(others, lower, 0.0).sum(axis=1))
     return np.column_stack([low, high])
 
 
@@ -200,10 +218,25 @@ def _total_is_safe(total: float, values: np.ndarray, hidden: np.ndarray,
     return bool((bounds[:, 1] - bounds[:, 0] >= MIN_SPREAD).all())
 
 
-def _protect_total(values: np.ndarray, n: int, total: float) -> tuple[np.ndarray, bool]:
-    """Hide a second cell where that keeps the hidden ones safe; else withhold the total.
+def protect_total(values: np.ndarray, n: int, total: float) -> tuple[np.ndarray, bool]:
+    """Complementary suppression of the cells of one published total.
 
-    Returns the cells withheld beyond the small ones, and whether the total can be shown.
+    Parameters
+    ----------
+    values : ndarray of float, shape (k,)
+        The cells (counts) that add up to ``total``; those from 1 to n - 1 are hidden.
+    n : int
+        The threshold.
+    total : float
+        Their published total.
+
+    Returns
+    -------
+    extra : ndarray of bool, shape (k,)
+        Cells to withhold as well: at most one, the smallest shown cell that keeps every
+        hidden cell's range (given the total) at least ``MIN_SPREAD`` wide.
+    total_shown : bool
+        False when even that does not protect them: the total must be withheld.
     """
     small = (values >= 1) & (values < n)
     lower = np.where(small, 1.0, float(n))
@@ -253,21 +286,26 @@ def coarse_curve(time: np.ndarray, event: np.ndarray, n: int, horizon_days: floa
         ``expected`` at the published times only.
     """
     time, event = np.asarray(time, float), np.asarray(event, float)
+    km = kaplan_meier(time, event, level=level)
     grid = at_risk_times(horizon_days)
+    # past the last follow-up time the estimate is unknown: the curve ends before that
+    grid = grid[: max(1, int(np.sum(~np.isnan(km.at(grid)))))]
     # step k counts the events in (grid[k-1], grid[k]]; the first step includes day 0
-    step = np.clip(np.searchsorted(grid, time[event > 0], side="left"), 1, grid.size - 1)
+    events = time[(event > 0) & (time <= grid[-1])]
+    step = np.clip(np.searchsorted(grid, events, side="left"), 1, None)
     per_step = np.bincount(step, minlength=grid.size)[1:]
     shown, since = [], 0
-    for k, events in enumerate(per_step, start=1):
-        since += events
+    for k, count in enumerate(per_step, start=1):
+        since += count
         if since >= n:
             shown.append(k)
             since = 0
-    if since > 0 or not shown:
-        shown = [*shown[:-1], len(grid) - 1] if since > 0 else [len(grid) - 1]
-    elif shown[-1] != len(grid) - 1:
-        shown.append(len(grid) - 1)  # no event after the last step: the curve stays flat
-    km = kaplan_meier(time, event, level=level)
+    last = grid.size - 1
+    if since > 0 and shown:
+        shown[-1] = last  # the last events, fewer than n, join the step before them
+    elif since == 0 and last > 0 and (not shown or shown[-1] != last):
+        shown.append(last)  # no event since the last step: the curve stays flat
+    # (fewer than n events in all: nothing is published beyond day 0)
     at = grid[shown]
     ordered = expected.sort_values("time", kind="stable")
     lookup = np.searchsorted(ordered["time"].to_numpy(float), np.r_[0.0, at], side="right") - 1
@@ -309,8 +347,8 @@ def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
                           "survival, E, distances to another verdict, case mix",
                     why.format(n=n, m=n - 1) + ": each of these gives the counts back"))
         candidates = hidden_candidates(out["observed"].iloc[i], out["recipients"].iloc[i], n)
-        if not _verdict_is_uninformative(row["verdict"], candidates, row["expected"], prior,
-                                         rules):
+        if not verdict_says_nothing(row["verdict"], candidates, row["expected"], prior,
+                                    rules):
             verdicts[i] = WITHHELD
             log.append((code, "verdict", "the verdict would narrow down the hidden count"))
     out["verdict"] = verdicts
@@ -343,7 +381,7 @@ def _public_curves(data: EvaluationFolder, shown: list[str], n: int, log: list
 def _public_exclusions(reasons: pd.DataFrame, excluded: float, n: int, log: list
                        ) -> tuple[pd.DataFrame, bool]:
     values = reasons["records"].to_numpy(float)
-    extra, total_shown = _protect_total(values, n, excluded)
+    extra, total_shown = protect_total(values, n, excluded)
     text = _count_texts(reasons["records"], n)
     for i in np.flatnonzero(extra):
         text[i] = WITHHELD
