@@ -165,10 +165,13 @@ def _program(release: PublicRelease, position: int, row: pd.Series,
         _interval(row, "oe_ratio", "oe_lower", "oe_upper"),
         _interval(row, "hr_mean", "hr_lower", "hr_upper"))
     if row["protected"]:
-        text = (f"This program has fewer than {n} recipients, or from 1 to {n - 1} events or "
-                "recipients without the event: every figure from which those counts could "
-                "be worked out is withheld, including its curves, its case mix and the "
-                "distance to another verdict.")
+        why = (f"fewer than {n} recipients" if row["recipients"] == f"<{n}"
+               else f"from 1 to {n - 1} events, or as few recipients without the event")
+        text = (f"This program has {why}: every figure from which its counts could be worked "
+                "out is withheld, including its curves, its case mix and the distance to "
+                "another verdict.")
+        if row["verdict"] == WITHHELD:
+            text += " Its verdict is withheld too: it would narrow down the hidden count."
         return Markup('<div class="program" id="{}"><h3>{}</h3>{}<p class="note">{}</p>'
                       "</div>").format(program_anchor(position, code), code, facts, text)
     what_if = what_if_text(row, release.run["rules"].get("min_expected", 1.0))
