@@ -20,7 +20,7 @@ from casemix.report.sections import (
 )
 from casemix.report.suppress import check_threshold, suppressed_text
 
-__all__ = ["REPORT_CAUTIONS", "render_report", "report_cautions", "write_report"]
+__all__ = ["REPORT_CAUTIONS", "render_report", "report_cautions", "report_page", "write_report"]
 
 REPORT_CAUTIONS = (
     ("quality of care",
@@ -112,10 +112,16 @@ def render_report(
     ]
     if audit_folder is not None:
         sections.append(audit_section(audit_folder))
+    return report_page("Observed and expected outcomes by program", sections, data, options)
+
+
+def report_page(title: str, sections: list, data: EvaluationFolder,
+                options: ReportOptions) -> str:
+    """Render a report's sections as a page with its cautions, summary line and footer."""
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
     return render_page(
-        "Observed and expected outcomes by program",
+        title,
         sections,
         cautions=report_cautions(data, options),
         cautions_at=1,

@@ -12,10 +12,10 @@ import pandas as pd
 from markupsafe import Markup
 
 from casemix.errors import plural
-from casemix.report.build import report_cautions
+from casemix.report.build import report_page
 from casemix.report.disclosure import WITHHELD, PublicRelease
 from casemix.report.folder import EvaluationFolder
-from casemix.report.page import MISSING, Section, figure_svg, render_page, table_html
+from casemix.report.page import MISSING, Section, figure_svg, table_html
 from casemix.report.plots import (
     VERDICT_WORDS,
     at_risk_times,
@@ -27,6 +27,7 @@ from casemix.report.plots import (
 from casemix.report.sections import (
     ReportOptions,
     evaluated_section,
+    glance_headers,
     model_section,
     program_anchor,
     verdict_html,
@@ -79,8 +80,6 @@ def _verdict(verdict: str, palette: dict[str, str]) -> object:
 
 def _glance(release: PublicRelease) -> Section:
     programs, palette = release.programs, verdict_colours()
-    rules, horizon = release.run["rules"], release.run["horizon_days"]
-    level = release.run.get("credible_level", 0.95)
     rows = [r for _, r in programs.iterrows()]
     frame = pd.DataFrame({
         "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, r["program"]),
@@ -98,15 +97,7 @@ def _glance(release: PublicRelease) -> Section:
                                         "observed_survival_upper", 3) for r in rows],
         "expected_survival": [_num(r["expected_survival"], 3, r["protected"]) for r in rows],
     }, dtype=object)
-    headers = {
-        "program": "Program", "verdict": "Verdict", "recipients": "Recipients",
-        "observed": "Observed (O)", "expected": "Expected (E)", "oe": "O/E (exact 95%)",
-        "hr": f"Hazard ratio ({level:.0%} credible)",
-        "p_above": f"P(HR\u00a0>\u00a0{rules.get('upper_margin', 1.0):g})",
-        "p_below": f"P(HR\u00a0<\u00a0{rules.get('lower_margin', 1.0):g})",
-        "observed_survival": f"Observed survival at {horizon} days (95%)",
-        "expected_survival": f"Expected survival at {horizon} days",
-    }
+    headers = glance_headers(release.run)
     table = table_html(frame, headers=headers, wide=True,
                        numeric=[c for c in headers if c not in ("program", "verdict")])
     counts = programs["verdict"].value_counts()
@@ -266,14 +257,5 @@ def render_public_report(release: PublicRelease, *, log_expected: bool = False) 
         model_section(data, options),
         _withheld(release),
     ]
-    run = release.run
-    outcome = str(run["outcome"]).replace("_", " ")
-    return render_page(
-        "Observed and expected outcomes by program (public release)",
-        sections,
-        cautions=report_cautions(data, options),
-        cautions_at=1,
-        summary=f"{outcome.capitalize()} within {run['horizon_days']} days of transplant; "
-                f"data to {run['cutoff']}.",
-        footer=f"Made with casemix {run.get('casemix_version', '(version not recorded)')}.",
-    )
+    return report_page("Observed and expected outcomes by program (public release)",
+                       sections, data, options)

@@ -39,6 +39,7 @@ __all__ = [
     "data_quality_section",
     "each_program_section",
     "evaluated_section",
+    "glance_headers",
     "model_section",
     "overview_section",
     "program_anchor",
@@ -218,11 +219,11 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
     })
 
 
-def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
-    """The program table: verdict in words with its colour, O, E, O/E, HR and survival."""
-    rules, horizon = data.run["rules"], data.run["horizon_days"]
-    level = data.run.get("credible_level", 0.95)
-    headers = {
+def glance_headers(run: dict) -> dict[str, str]:
+    """Column headings of the program table, from run.json's rules, horizon and level."""
+    rules, horizon = run["rules"], run["horizon_days"]
+    level = run.get("credible_level", 0.95)
+    return {
         "program": "Program", "verdict": "Verdict", "recipients": "Recipients",
         "observed": "Observed (O)", "expected": "Expected (E)", "oe": "O/E (exact 95%)",
         "hr": f"Hazard ratio ({level:.0%} credible)",
@@ -231,6 +232,11 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
         "observed_survival": f"Observed survival at {horizon} days (95%)",
         "expected_survival": f"Expected survival at {horizon} days",
     }
+
+
+def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+    """The program table: verdict in words with its colour, O, E, O/E, HR and survival."""
+    headers = glance_headers(data.run)
     table = table_html(_glance_frame(data, options), headers=headers,
                        numeric=[c for c in headers if c not in ("program", "verdict")],
                        wide=True)
