@@ -31,6 +31,7 @@ from casemix import demo
 from casemix._io import write_csv
 from casemix.evaluation.evaluate import evaluate
 from casemix.report import render_report, write_public_release
+from casemix.report.disclosure import DERIVED_COLUMNS
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts
 from casemix.stats.shrinkage import Prior
@@ -84,6 +85,34 @@ def _report_facts(html: str) -> dict[str, dict]:
         facts[unescape(code)] = {"n": m["n"], "o": m["o"], "e": _num(m["e"]),
                                  "oe": _num(m["oe"]), "hr": _num(m["hr"])}
     return facts
+
+
+def _funnel_claims(html: str, programs: pd.DataFrame) -> list[dict]:
+    """O from a program's point in the funnel plot, read off the page's SVG.
+
+    The points are matched to the programs whose E is published by the order of E (the
+    axis is linear); the programs with a published O/E fix the pixel scale of each axis,
+    and a program with a hidden count whose point is drawn gets O = E x (O/E read off).
+    """
+    figure = re.search(r'aria-label="Funnel plot.*?PathCollection_1">(.*?)</g>\s*</g>\s*<g',
+                       html, re.S)
+    if figure is None:
+        return []
+    points = np.array([(float(x), float(y)) for x, y in
+                       re.findall(r'<use [^>]*x="([-\d.]+)" y="([-\d.]+)"', figure[1])])
+    e = pd.to_numeric(programs["expected"], errors="coerce")
+    oe = pd.to_numeric(programs["oe_ratio"], errors="coerce")
+    drawn = programs.index[e > 0]
+    assert len(points) == len(drawn), "a point is drawn for a program whose E is withheld"
+    order = drawn[np.argsort(e[drawn].to_numpy(), kind="stable")]
+    points = points[np.argsort(points[:, 0], kind="stable")]
+    known = oe[order].notna().to_numpy()
+    if known.sum() < 2 or known.all():
+        return []
+    slope, intercept = np.polyfit(oe[order].to_numpy()[known], points[known, 1], 1)
+    return [{"cell": ("observed", programs.loc[i, "program"]), "derivation": "funnel point",
+             "range": _near(e[i] * (y - intercept) / slope)}
+            for i, y in zip(order[~known], points[~known, 1], strict=True)]
 
 
 def _o_derivations(row: pd.Series, run: dict, curve: pd.DataFrame, n: float | None):
@@ -224,6 +253,8 @@ def attack(public: Path) -> list[dict]:
             for name, bounds in _n_derivations(row, run, curve, fu).items():
                 claim(("recipients", code), name, bounds)
         claims += _at_risk_claims(code, curve)
+    if report.is_file():
+        claims += _funnel_claims(report.read_text(encoding="utf-8"), programs)
     return claims + _total_claims(run["counts"], programs, reasons)
 
 
@@ -336,6 +367,19 @@ def test_the_attacker_recovers_counts_from_a_naive_release(demo_folder, small_ne
                 "n x (1 - observed survival)", "curve steps", "report: E x O/E",
                 "report: HR given the prior"} <= ways, (name, ways)
     assert any(f["cell"][0] == "at_risk" for f in found)  # from the drops of the curve
+
+
+def test_the_attacker_reads_hidden_counts_off_the_funnel_plot(demo_folder, tmp_path):
+    # a release that blanks every derived figure of the hidden programs but E, and keeps the
+    # internal figures: the points of the funnel plot give the counts back
+    naive = naive_release(demo_folder, tmp_path / "naive")
+    programs = pd.read_csv(naive / "programs.csv", dtype={"program": str})
+    hidden = programs["observed"] == SMALL
+    blank = [c for c in DERIVED_COLUMNS if c != "expected"]
+    programs.loc[hidden, blank] = np.nan
+    write_csv(naive / "programs.csv", programs)
+    claims = [c for c in successes(naive, demo_folder) if c["derivation"] == "funnel point"]
+    assert {c["cell"][1] for c in claims} == set(programs.loc[hidden, "program"])
 
 
 def _one_small_program(folder: Path, out: Path) -> Path:
