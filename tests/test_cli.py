@@ -592,10 +592,11 @@ def test_report_writes_an_html_file_with_every_program_and_its_counts(evaluation
 def test_report_suppress_below_hides_small_counts(evaluation_dir, tmp_path):
     folder = tmp_path / "results"
     shutil.copytree(evaluation_dir, folder)
-    out = tmp_path / "public.html"
-    result = invoke("report", folder, "--out", out, "--suppress-below", 11)
+    internal = (folder / "programs.csv").read_bytes()
+    result = invoke("report", folder, "--suppress-below", 11)
+    out = folder / "public" / "report.html"
     assert_exit(result, 0, re.escape(f"report: {out}"))
-    assert "Counts from 1 to 10 are hidden" in out.read_text(encoding="utf-8")
+    assert "Public release: counts from 1 to 10" in out.read_text(encoding="utf-8")
     small = _small_programs(folder)
     for code, observed in small.items():  # no table cell holds the hidden count itself
         rows = _rows_of(out, code)
@@ -603,8 +604,14 @@ def test_report_suppress_below_hides_small_counts(evaluation_dir, tmp_path):
         assert not any(str(observed) in row for row in rows), rows
     public = pd.read_csv(folder / "public" / "programs.csv", dtype=str).set_index("program")
     assert (public.loc[small.index, "observed"] == "<11").all()
-    # the evaluation's own table keeps the counts
-    assert (folder / "programs.csv").read_bytes() == (evaluation_dir / "programs.csv").read_bytes()
+    assert public.loc[small.index, "oe_ratio"].isna().all()  # O/E would give O back
+    # the evaluation's own files are not touched; --out names another public folder
+    assert (folder / "programs.csv").read_bytes() == internal
+    assert not (folder / "report.html").exists()
+    assert_exit(invoke("report", folder, "--suppress-below", 11, "--out", tmp_path / "pub"), 0)
+    assert (tmp_path / "pub" / "withheld.csv").is_file()
+    assert_exit(invoke("report", folder, "--suppress-below", 11, "--out", folder), 1,
+                "internal files")
 
 
 def test_report_of_an_incomplete_folder_names_the_missing_file(tmp_path):

@@ -473,11 +473,15 @@ def report(
                              metavar="FOLDER")
     ],
     out_file: Annotated[
-        Path | None, typer.Option("--out", dir_okay=False, help="Report file (.html).")
+        Path | None,
+        typer.Option("--out", help="Report file (.html); with --suppress-below, the public "
+                                   "release folder (default FOLDER/public)."),
     ] = None,
     suppress_below: Annotated[
         int | None,
-        typer.Option("--suppress-below", min=2, help="Hide counts from 1 to N-1 (public release)."),
+        typer.Option("--suppress-below", min=2,
+                     help="Write a public release: counts from 1 to N-1 hidden, with every "
+                          "figure that gives them back."),
     ] = None,
     audit: Annotated[
         Path | None,
@@ -486,18 +490,27 @@ def report(
 ) -> None:
     """Write the self-contained HTML report of an evaluation folder.
 
-    With --suppress-below N, counts from 1 to N-1 are hidden in the report and in the
-    public copies of the tables written to FOLDER/public/.
+    With --suppress-below N, write a public release instead, to its own folder (FOLDER/public
+    or --out): tables, run.json and report.html in which counts from 1 to N-1 and every
+    figure from which they could be worked out are withheld or coarsened (docs/disclosure.md).
+    The internal files and report are not touched.
 
     Example: casemix report results --suppress-below 11
     """
     with _guarded():
-        path = _write_report(folder, out_file, suppress_below, audit)
-        if suppress_below is not None:
-            from casemix.report import write_public_tables
+        if suppress_below is None:
+            path = _write_report(folder, out_file, None, audit)
+        else:
+            from casemix.report import write_public_release
 
-            public = write_public_tables(folder, folder / "public", suppress_below)
-            out.print(f"public tables with counts under {suppress_below} hidden: {public}")
+            if audit is not None:
+                err.print("error: --audit is not part of a public release; leave it out with "
+                          "--suppress-below", markup=False)
+                raise typer.Exit(2)
+            public = write_public_release(folder, suppress_below, out_file)
+            out.print(f"public release (counts under {suppress_below} hidden, figures that "
+                      f"give them back withheld): {public}")
+            path = public / "report.html"
     out.print(f"report: {path}")
 
 

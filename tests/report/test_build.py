@@ -77,15 +77,23 @@ def test_report_escapes_a_hostile_program_name(hostile_report, strict_html):
     assert "Run caution with &lt;b&gt;markup&lt;/b&gt;." in hostile_report
 
 
-def test_small_counts_are_suppressed_and_said_so(hostile_folder, hostile_report):
+def test_small_counts_are_suppressed_and_said_so(hostile_folder, hostile_report, tmp_path):
     hidden = render_report(hostile_folder, suppress_below=11)
     programs = pd.read_csv(hostile_folder / "programs.csv")
     small = programs.loc[programs["program"] == "LV03"].iloc[0]
     cell = f'<td class="num">{int(small["recipients"])}</td>'  # 9 recipients
     assert cell in hostile_report and cell not in hidden
     assert '<td class="num">&lt;11</td>' in hidden
-    assert "Counts from 1 to 10 are hidden and shown as “&lt;11”" in hidden
-    assert "are hidden" not in hostile_report
+    assert "Public release: counts from 1 to 10 are shown as “&lt;11”" in hidden
+    assert "What this public release withholds" in hidden
+    assert "withheld" not in hostile_report
+    # the public report goes to public/, never over the internal report
+    assert write_report(hostile_folder, suppress_below=11) == (
+        hostile_folder / "public" / "report.html")
+    with pytest.raises(InputError, match=r"cannot replace the internal one"):
+        write_report(hostile_folder, hostile_folder / "report.html", suppress_below=11)
+    with pytest.raises(InputError, match=r"the audit is not part of a public release"):
+        render_report(hostile_folder, suppress_below=11, audit_folder=tmp_path)
 
 
 def test_report_is_reproducible_and_written_atomically(evaluation_folder, report, tmp_path):

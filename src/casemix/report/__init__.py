@@ -3,11 +3,13 @@
 ``write_report(folder)`` reads an evaluation folder and writes ``report.html``: inline CSS
 and SVG figures (matplotlib), no scripts and no outside requests. ``casemix.report.page``
 holds the general pieces (sections, tables, figures) that other pages reuse.
+``write_public_release(folder, n)`` applies the disclosure rule (``disclosure``) and writes
+the public tables and report to a folder of their own.
 """
 
 from casemix.report.build import render_report, write_report
 from casemix.report.page import Section, facts_html, figure_svg, render_page, table_html
-from casemix.report.public import write_public_tables
+from casemix.report.release import write_public_release
 from casemix.report.suppress import suppress_counts
 
 __all__ = [
@@ -18,6 +20,6 @@ __all__ = [
     "render_report",
     "suppress_counts",
     "table_html",
-    "write_public_tables",
+    "write_public_release",
     "write_report",
 ]

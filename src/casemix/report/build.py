@@ -22,7 +22,7 @@ from casemix.report.sections import (
 )
 from casemix.report.suppress import check_threshold, suppressed_text
 
-__all__ = ["REPORT_CAUTIONS", "render_report", "report_cautions", "write_report"]
+__all__ = ["REPORT_CAUTIONS", "render_report", "report_cautions", "report_page", "write_report"]
 
 REPORT_CAUTIONS = (
     ("quality of care",
@@ -49,10 +49,9 @@ def report_cautions(data: EvaluationFolder, options: ReportOptions) -> list[str]
     if options.suppress_below:
         n = options.suppress_below
         cautions.append(
-            f"Counts from 1 to {n - 1} are hidden and shown as “{suppressed_text(n)}” "
-            "(recipients, events, numbers at risk, excluded records). Ratios, survival figures "
-            "and intervals are still shown and can let a reader work out a hidden count: "
-            "review them before public release."
+            f"Public release: counts from 1 to {n - 1} are shown as “{suppressed_text(n)}”, and "
+            "figures from which they could be worked out are withheld or coarsened (listed in "
+            "the last part)."
         )
     no_e = data.programs.loc[data.programs["expected"] <= 0, "program"].tolist()
     if no_e:
@@ -77,9 +76,12 @@ def render_report(
         The folder written by ``Evaluation.save`` (programs.csv, recipients.csv,
         exclusions.csv, followup.csv, casemix.csv, curves.csv, coefficients.csv, run.json).
     suppress_below : int, optional
-        Hide counts from 1 to ``suppress_below - 1`` (shown as ``"<N"``); at least 2.
+        Return the public report instead: the disclosure rule with threshold N (at least 2)
+        is applied first (:func:`casemix.report.disclosure.make_release`), so counts from 1
+        to N - 1 and every figure that gives them back are withheld or coarsened.
     audit_folder : str or Path, optional
-        A folder written by the audit: its findings and every CSV become a last section.
+        A folder written by the audit: its findings and every CSV become a last section
+        (internal report only: the audit is not part of a public release).
     log_expected : bool, default False
         Logarithmic E axis in the funnel plot.
 
@@ -94,10 +96,10 @@ def render_report(
     InputError
         For a missing or malformed file in the folder, or a bad ``suppress_below``.
     """
-    options = ReportOptions(
-        suppress_below=None if suppress_below is None else check_threshold(suppress_below),
-        log_expected=log_expected,
-    )
+    if suppress_below is not None:
+        return _public_report(folder, check_threshold(suppress_below), audit_folder,
+                              log_expected)
+    options = ReportOptions(log_expected=log_expected)
     if audit_folder is not None and not Path(audit_folder).is_dir():
         raise InputError(f"{audit_folder}: audit folder not found; pass the folder `casemix "
                          "audit` wrote, or leave it out.")
@@ -117,10 +119,16 @@ def render_report(
         audit = audit_section(audit_folder, data.run["model"].get("fingerprint"))
         check_audit_folder(audit_folder, data.run)  # same rules and prior as the evaluation
         sections.append(audit)
+    return report_page("Observed and expected outcomes by program", sections, data, options)
+
+
+def report_page(title: str, sections: list, data: EvaluationFolder,
+                options: ReportOptions) -> str:
+    """Render a report's sections as a page with its cautions, summary line and footer."""
     run = data.run
     outcome = str(run["outcome"]).replace("_", " ")
     return render_page(
-        "Observed and expected outcomes by program",
+        title,
         sections,
         cautions=report_cautions(data, options),
         cautions_at=1,
@@ -130,6 +138,18 @@ def render_report(
                    else ""),
         footer=f"Made with casemix {run.get('casemix_version', '(version not recorded)')}.",
     )
+
+
+def _public_report(folder, n: int, audit_folder, log_expected: bool) -> str:
+    # Imported here: the public report reuses this module's cautions.
+    from casemix.report.disclosure import make_release
+    from casemix.report.public_report import render_public_report
+
+    if audit_folder is not None:
+        raise InputError("the audit is not part of a public release; leave out the audit "
+                         "folder when suppressing counts.")
+    release = make_release(read_evaluation_folder(folder), n)
+    return render_public_report(release, log_expected=log_expected)
 
 
 def write_report(
@@ -147,7 +167,9 @@ def write_report(
     folder : str or Path
         The evaluation folder (see :func:`render_report`).
     out : str or Path, optional
-        The file to write; default ``folder / "report.html"``.
+        The file to write; default ``folder / "report.html"``, and for a public report
+        (``suppress_below``) ``folder / "public" / "report.html"``: a public report is never
+        written over the internal one.
     suppress_below, audit_folder, log_expected
         As in :func:`render_report`.
 
@@ -158,5 +180,12 @@ def write_report(
     """
     html = render_report(folder, suppress_below=suppress_below, audit_folder=audit_folder,
                          log_expected=log_expected)
-    target = Path(folder) / "report.html" if out is None else Path(out)
+    internal = Path(folder) / "report.html"
+    if suppress_below is None:
+        target = internal if out is None else Path(out)
+    else:
+        target = Path(folder) / "public" / "report.html" if out is None else Path(out)
+        if target.resolve() == internal.resolve():
+            raise InputError(f"{target}: the public report cannot replace the internal one; "
+                             "write it to another file (default public/report.html).")
     return atomic_write_text(target, html)

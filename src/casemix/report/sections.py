@@ -39,6 +39,7 @@ __all__ = [
     "data_quality_section",
     "each_program_section",
     "evaluated_section",
+    "glance_headers",
     "model_section",
     "overview_section",
     "program_anchor",
@@ -73,7 +74,9 @@ def counts_text(values: Sequence[float], options: ReportOptions) -> list[str]:
     """Counts as text, suppressed when asked; missing counts show as an en dash."""
     out = []
     for value in values:
-        if pd.isna(value):
+        if isinstance(value, str):  # already text (a public release's "<N" or "withheld")
+            out.append(value)
+        elif pd.isna(value):
             out.append(MISSING)
         elif options.suppress_below and 1 <= value < options.suppress_below:
             out.append(suppress_value(value, options.suppress_below))
@@ -253,11 +256,11 @@ def _glance_html(data: EvaluationFolder) -> dict[str, list[Markup]]:
     }
 
 
-def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
-    """The program table: verdict in words with its colour, O, E, O/E, HR and survival."""
-    rules, horizon = data.run["rules"], data.run["horizon_days"]
-    level = data.run.get("credible_level", 0.95)
-    headers = {
+def glance_headers(run: dict) -> dict[str, str]:
+    """Column headings of the program table, from run.json's rules, horizon and level."""
+    rules, horizon = run["rules"], run["horizon_days"]
+    level = run.get("credible_level", 0.95)
+    return {
         "program": "Program", "verdict": "Verdict",
         "reach": f"Could be called ({rules.get('power', 0.8):.0%} chance, true HR)",
         "recipients": "Recipients",
@@ -268,6 +271,11 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
         "observed_survival": f"Observed survival at {horizon} days (95%)",
         "expected_survival": f"Expected survival at {horizon} days",
     }
+
+
+def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+    """The program table: verdict in words with its colour, O, E, O/E, HR and survival."""
+    headers = glance_headers(data.run)
     table = table_html(_glance_frame(data, options), headers=headers,
                        numeric=[c for c in headers if c not in ("program", "verdict", "reach")],
                        wide=True, html=_glance_html(data))
