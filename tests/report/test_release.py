@@ -34,7 +34,7 @@ from casemix.report import render_report, write_public_release
 from casemix.report.disclosure import KEPT_COLUMNS
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts
-from casemix.stats.shrinkage import Prior
+from casemix.stats.shrinkage import Prior, posterior
 from casemix.stats.verdict import assign_verdicts, rules_from_dict
 
 N = 11  # common practice in health statistics: no cell from 1 to 10 is published
@@ -115,6 +115,36 @@ def _funnel_claims(html: str, programs: pd.DataFrame) -> list[dict]:
             for i, y in zip(order[~known], points[~known, 1], strict=True)]
 
 
+def _mixture_derivations(row: pd.Series, prior: dict, rules, e: float, level: float, top: int,
+                         out: dict) -> Prior:
+    """HR and P(HR > margin) inverted under the published mixture prior; returns that prior."""
+    mixture = Prior(shape=float(prior["shape"]), rate=float(prior["rate"]),
+                    method="hierarchical",
+                    components=tuple(tuple(c) for c in prior["components"]))
+    candidates = np.arange(top + 1)
+    exact = posterior(candidates, np.full(candidates.size, e), mixture, level=level,
+                      upper_margin=rules.upper_margin, lower_margin=rules.lower_margin)
+    for column, name in (("hr_mean", "HR given the prior"), ("p_above", "P(HR > margin)")):
+        values = exact[column].to_numpy(float)
+        out[name] = _invert(_num(row.get(column)), lambda o, v=values: v[o], top)
+    return mixture
+
+
+def _verdict_derivations(row: pd.Series, e: float, prior: Prior, rules, top: int,
+                         out: dict) -> None:
+    """The counts whose verdict and distances to another verdict match the row's."""
+    candidates = np.arange(top + 1)
+    table = assign_verdicts(candidates, np.full(candidates.size, e), prior, rules)
+    for column in ("events_to_excess", "events_to_favorable"):
+        if (k := _num(row.get(column))) is not None:
+            hits = candidates[table[column].astype(float).to_numpy() == k]
+            out[column] = (int(hits.min()), int(hits.max())) if hits.size else None
+    if row.get("verdict") in set(table["verdict"]):
+        hits = candidates[(table["verdict"] == row["verdict"]).to_numpy()]
+        hits = hits[(hits >= 1) & (hits < N)] if row["observed"] == SMALL else hits
+        out["verdict"] = (int(hits.min()), int(hits.max())) if hits.size else None
+
+
 def _o_derivations(row: pd.Series, run: dict, curve: pd.DataFrame, n: float | None):
     prior, rules = run["prior"], rules_from_dict(run["rules"])
     a, b = float(prior["shape"]), float(prior["rate"])
@@ -148,16 +178,9 @@ def _o_derivations(row: pd.Series, run: dict, curve: pd.DataFrame, n: float | No
         out["P(HR > margin)"] = _invert(_num(row.get("p_above")),
                                         lambda o: post(o).sf(rules.upper_margin), top)
         verdict_prior = Prior(shape=a, rate=b, method="fixed")
-        candidates = np.arange(top + 1)
-        table = assign_verdicts(candidates, np.full(candidates.size, e), verdict_prior, rules)
-        for column in ("events_to_excess", "events_to_favorable"):
-            if (k := _num(row.get(column))) is not None:
-                hits = candidates[table[column].astype(float).to_numpy() == k]
-                out[column] = (int(hits.min()), int(hits.max())) if hits.size else None
-        if row.get("verdict") in set(table["verdict"]):
-            hits = candidates[(table["verdict"] == row["verdict"]).to_numpy()]
-            hits = hits[(hits >= 1) & (hits < N)] if row["observed"] == SMALL else hits
-            out["verdict"] = (int(hits.min()), int(hits.max())) if hits.size else None
+        if prior.get("components"):  # a mixture prior, published whole: use it exactly
+            verdict_prior = _mixture_derivations(row, prior, rules, e, level, top, out)
+        _verdict_derivations(row, e, verdict_prior, rules, top, out)
     if n is not None and (s := _num(row.get("observed_survival"))) is not None:
         out["n x (1 - observed survival)"] = _near(n * (1 - s))
     if len(curve):
@@ -376,6 +399,7 @@ def test_the_attacker_reads_hidden_counts_off_the_funnel_plot(demo_folder, tmp_p
     programs = pd.read_csv(naive / "programs.csv", dtype={"program": str})
     hidden = programs["observed"] == SMALL
     blank = [c for c in programs.columns if c not in (*KEPT_COLUMNS, "expected")]
+    programs[blank] = programs[blank].astype(object)  # some are true/false columns
     programs.loc[hidden, blank] = np.nan
     write_csv(naive / "programs.csv", programs)
     claims = [c for c in successes(naive, demo_folder) if c["derivation"] == "funnel point"]

@@ -335,6 +335,8 @@ def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
                        for r, o in zip(programs["recipients"], programs["observed"],
                                        strict=True)]
     derived = [c for c in out.columns if c not in KEPT_COLUMNS]
+    flags = [c for c in derived if out[c].dtype == bool]
+    out[flags] = out[flags].astype(object)  # true/false columns can then be left empty
     verdicts = out["verdict"].astype(object).to_numpy().copy()
     for i in np.flatnonzero(protected.to_numpy()):
         row = programs.iloc[i]
@@ -407,7 +409,10 @@ def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
     public["prior"] = {k: v for k, v in run["prior"].items()
                        if k not in ("log_marginal", "components")}
     counts = dict(run["counts"])
-    counts.pop("corrections", None)  # per kind: corrections_by_kind.csv, protected there
+    # Per kind and per reason they are in corrections_by_kind.csv and exclusions_by_reason.csv,
+    # protected there.
+    counts.pop("corrections", None)
+    counts.pop("excluded_by_reason", None)
     if "corrected" in counts and not corrected_shown:
         counts["corrected"] = None
     counts["kept"] = counts.get("kept") if kept_shown else None
