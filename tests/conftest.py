@@ -17,6 +17,6 @@ def rossi():
 
 @pytest.fixture(scope="session")
 def rossi_fit(rossi):
-    """Efron fit of the full model (REFERENCE_CHECKS.md section 3.1)."""
+    """Efron fit of the full model (docs/validation.md section 3.1)."""
     names = list(ROSSI_FULL)
     return fit_cox(rossi["week"], rossi["arrest"], rossi[names].to_numpy(float), names=names)

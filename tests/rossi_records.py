@@ -4,11 +4,11 @@ Shared by the tests of the reference model, expected events, the program table, 
 decomposition and the evaluation API. Each of the 432 subjects becomes one recipient with an
 invented id, transplanted on ``ROSSI_TX``; follow-up ends ``7 * week`` days later (the arrest
 date for the 114 arrests, the last-seen date otherwise). A Cox fit does not change when time
-is multiplied by 7, so every rossi value of REFERENCE_CHECKS.md holds with days for weeks.
+is multiplied by 7, so every rossi value of docs/validation.md holds with days for weeks.
 
 The independent checks read lifelines' ``baseline_cumulative_hazard_`` as a right-continuous
 step function (last value at or before t), never through its interpolating predict functions
-(REFERENCE_CHECKS.md, Conventions 3).
+(docs/validation.md, Conventions 3).
 """
 
 from __future__ import annotations

@@ -11,7 +11,7 @@ ROSSI_SMALL = ("fin", "age", "prio")
 def step_expected(cph, frame, names):
     """Per-row expected events from a lifelines fit, its baseline read as a step function.
 
-    REFERENCE_CHECKS.md conventions 1 and 3: lifelines' baseline_cumulative_hazard_ is at the
+    docs/validation.md conventions 1 and 3: lifelines' baseline_cumulative_hazard_ is at the
     training means; read at the last time <= t (not lifelines' interpolating predict).
     """
     baseline = cph.baseline_cumulative_hazard_

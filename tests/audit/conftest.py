@@ -10,6 +10,6 @@ from casemix.survival import fit_cox
 
 @pytest.fixture(scope="session")
 def rossi_small_fit(rossi):
-    """Efron fit of fin + age + prio (REFERENCE_CHECKS.md section 10)."""
+    """Efron fit of fin + age + prio (docs/validation.md section 10)."""
     names = list(ROSSI_SMALL)
     return fit_cox(rossi["week"], rossi["arrest"], rossi[names].to_numpy(float), names=names)

@@ -24,7 +24,7 @@ from casemix.survival import fit_cox
 
 CoxPHFitter = lazy("lifelines", "CoxPHFitter")
 
-# REFERENCE_CHECKS.md section 5, model B: reference = rossi fin = 0, cohort = fin = 1.
+# docs/validation.md section 5, model B: reference = rossi fin = 0, cohort = fin = 1.
 NAMES = ["age", "race", "wexp", "mar", "paro", "prio"]
 
 
@@ -49,7 +49,7 @@ def model_b(rossi):
 
 
 def test_full_fit_expected_matches_reference_value(model_b):
-    # REFERENCE_CHECKS.md section 5: cohort E = 74.7406 (step evaluation; hand Breslow and
+    # docs/validation.md section 5: cohort E = 74.7406 (step evaluation; hand Breslow and
     # lifelines baseline read as a step function).
     assert model_b.cohort.expected(model_b.fit).sum() == pytest.approx(74.7406, rel=1e-5)
 
@@ -105,7 +105,7 @@ def test_mixture_interval_against_brute_force_draws(model_b):
 def test_mixture_of_identical_components_is_the_component():
     # COMMON PRACTICE: a mixture of one law is that law (REFERENCE LIBRARY scipy.stats.gamma)
     lower, upper = mixture_interval(14, [8.0, 8.0, 8.0])
-    # REFERENCE_CHECKS.md section 7, O = 12, E = 6, a = b = 2: Gamma(14, 8) 2.5% 0.956741,
+    # docs/validation.md section 7, O = 12, E = 6, a = b = 2: Gamma(14, 8) 2.5% 0.956741,
     # 97.5% 2.778799
     assert (lower, upper) == pytest.approx((0.956741, 2.778799), abs=1e-6)
 

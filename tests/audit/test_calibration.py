@@ -30,7 +30,7 @@ def test_group_table_uses_garwood_limits():
     )
     assert list(table["group"]) == ["a", "b"]
     np.testing.assert_allclose(table["expected"], [1.6, 1.3])
-    # REFERENCE_CHECKS.md section 6, Garwood 95%: O = 1 (0.0253, 5.5716); O = 2 (0.2422, 7.2247)
+    # docs/validation.md section 6, Garwood 95%: O = 1 (0.0253, 5.5716); O = 2 (0.2422, 7.2247)
     np.testing.assert_allclose(table["oe_lower"], [0.0253 / 1.6, 0.2422 / 1.3], atol=5e-5)
     np.testing.assert_allclose(table["oe_upper"], [5.5716 / 1.6, 7.2247 / 1.3], atol=5e-5)
 
@@ -38,7 +38,7 @@ def test_group_table_uses_garwood_limits():
 def test_deciles_on_rossi_add_up(rossi, rossi_fit):
     _, e, lp = _rossi_arrays(rossi, rossi_fit)
     table = calibration_by_risk(rossi["arrest"], e, lp)
-    # REFERENCE_CHECKS.md section 4: on the fitting data sum E = sum O = 114 (Breslow property)
+    # docs/validation.md section 4: on the fitting data sum E = sum O = 114 (Breslow property)
     assert table["observed"].sum() == 114 and table["expected"].sum() == pytest.approx(
         114, abs=1e-8
     )
@@ -89,7 +89,7 @@ def test_by_horizon_on_the_fitting_data(rossi, rossi_fit):
     table = calibration_by_horizon(rossi_fit, rossi["week"], rossi["arrest"], X, [52, 26])
     assert list(table["horizon"]) == [26.0, 52.0]
     # the Breslow property holds at every cut: E(26) = O(26) on the fitting data
-    # (REFERENCE_CHECKS.md section 4); O(26) = (1 - 0.875) * 432 = 54 (section 1.3: S(26)).
+    # (docs/validation.md section 4); O(26) = (1 - 0.875) * 432 = 54 (section 1.3: S(26)).
     assert list(table["observed"]) == [54, 114]
     np.testing.assert_allclose(table["oe_ratio"], [1.0, 1.0], atol=1e-10)
 

@@ -18,7 +18,7 @@ def _arrays(rossi):
 
 def test_statsmodels_agrees_and_a_wrong_fit_is_caught(rossi, rossi_fit):
     table = crosscheck_statsmodels(rossi_fit, *_arrays(rossi)).set_index("quantity")
-    # REFERENCE_CHECKS.md tolerances for Cox fits: coef, SE abs 1e-4; loglik abs 1e-6
+    # docs/validation.md tolerances for Cox fits: coef, SE abs 1e-4; loglik abs 1e-6
     # (REFERENCE LIBRARY statsmodels PHReg, Efron ties).
     assert table.loc["coef", "max_abs_difference"] < 1e-6
     assert table.loc["se", "max_abs_difference"] < 1e-6
@@ -39,7 +39,7 @@ def test_breslow_ties_and_strata(rossi):
 
 
 def test_lifelines_expected_counts(rossi):
-    # REFERENCE_CHECKS.md section 5, model B: reference fin = 0, cohort fin = 1; cohort
+    # docs/validation.md section 5, model B: reference fin = 0, cohort fin = 1; cohort
     # E = 74.7406 by step evaluation (lifelines baseline read as a step function).
     names = ["age", "race", "wexp", "mar", "paro", "prio"]
     ref, coh = rossi[rossi["fin"] == 0], rossi[rossi["fin"] == 1]
@@ -51,7 +51,7 @@ def test_lifelines_expected_counts(rossi):
         fit, ref["week"], ref["arrest"], ref[names].to_numpy(float), cohort
     ).set_index("quantity")
     assert cohort.expected(fit).sum() == pytest.approx(74.7406, rel=1e-5)
-    # lifelines stops about 4e-5 from the optimum (REFERENCE_CHECKS.md section 3.7)
+    # lifelines stops about 4e-5 from the optimum (docs/validation.md section 3.7)
     assert table.loc["coef", "max_abs_difference"] < 1e-4
     assert table.loc["expected", "max_rel_difference"] < 1e-5
 
@@ -64,6 +64,6 @@ def test_lifelines_expected_counts_with_strata(rossi):
     fit = fit_cox(time, event, X, strata=strata, names=names)
     cohort = ProgramArrays.build(time, X, strata, np.where(rossi["paro"] == 1, "P", "Q"))
     table = crosscheck_lifelines(fit, time, event, X, cohort, strata).set_index("quantity")
-    # on the fitting data the Breslow E sum to the 114 events (REFERENCE_CHECKS.md section 4)
+    # on the fitting data the Breslow E sum to the 114 events (docs/validation.md section 4)
     assert cohort.expected(fit).sum() == pytest.approx(114, abs=1e-8)
     assert table.loc["expected", "max_rel_difference"] < 1e-4

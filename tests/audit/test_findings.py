@@ -13,7 +13,7 @@ from casemix.audit.findings import crosscheck_findings, dispersion_findings, ph_
 def test_ph_findings_name_the_covariates(rossi, rossi_fit):
     table = ph_test(rossi_fit, rossi["week"], rossi["arrest"], rossi[list(ROSSI_FULL)])
     found = ph_findings(table.reset_index().assign(transform="rank"))
-    # REFERENCE_CHECKS.md section 10, lifelines rank: age 11.45350, wexp 7.31493 on 1 df;
+    # docs/validation.md section 10, lifelines rank: age 11.45350, wexp 7.31493 on 1 df;
     # p from scipy.stats.chi2: 0.00071 and 0.0068, both below 0.01; the others above.
     assert stats.chi2.sf(7.31493, 1) < 0.01 < stats.chi2.sf(1.42648, 1)
     assert found == [

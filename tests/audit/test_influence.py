@@ -37,7 +37,7 @@ def test_matches_refitting_without_each_program(rossi):
     for j, program in enumerate(cohort.programs):
         keep = _program(ref) != program
         # REFERENCE LIBRARY: lifelines CoxPHFitter on the reference without the program,
-        # E from its baseline read as a step function (REFERENCE_CHECKS.md convention 3)
+        # E from its baseline read as a step function (docs/validation.md convention 3)
         cph = CoxPHFitter().fit(ref.loc[keep, [*NAMES, "week", "arrest"]], "week", "arrest")
         mine = coh[_program(coh) == program]
         e = step_expected(cph, mine, NAMES).sum()

@@ -29,7 +29,7 @@ def _data(rossi, names):
     return rossi["week"], rossi["arrest"], rossi[list(names)].to_numpy(float)
 
 
-# REFERENCE_CHECKS.md section 10, REFERENCE LIBRARY lifelines 0.30.3 proportional_hazard_test
+# docs/validation.md section 10, REFERENCE LIBRARY lifelines 0.30.3 proportional_hazard_test
 # on the full rossi model (rank and km also PUBLISHED in the lifelines PH tutorial, from
 # memory; verified). Order fin, age, race, wexp, mar, paro, prio.
 LIFELINES_FULL = {
@@ -72,7 +72,7 @@ def test_same_coefficients_give_lifelines_statistics_exactly(rossi, transform):
 def test_old_r_convention_fin_age_prio(rossi, rossi_small_fit):
     # PUBLISHED (from memory): Fox & Weisberg appendix, cox.zph: chisq 0.00507, 6.54147,
     # 0.77288 (p 0.9433, 0.0105, 0.3793); GLOBAL 7.13184 remembered, 7.13046 computed
-    # (REFERENCE_CHECKS.md section 10: MISMATCH, global good to 3 significant figures).
+    # (docs/validation.md section 10: MISMATCH, global good to 3 significant figures).
     table = ph_test(rossi_small_fit, *_data(rossi, ROSSI_SMALL), "km_left")
     np.testing.assert_allclose(table["statistic"].iloc[:3], [0.00507, 6.54147, 0.77288], atol=1e-4)
     np.testing.assert_allclose(table["p_value"].iloc[:3], [0.9433, 0.0105, 0.3793], atol=5e-5)
@@ -82,7 +82,7 @@ def test_old_r_convention_fin_age_prio(rossi, rossi_small_fit):
 
 
 def test_old_r_convention_full_model(rossi, rossi_fit):
-    # REFERENCE_CHECKS.md section 10, REFERENCE LIBRARY: lifelines Schoenfeld residuals with a
+    # docs/validation.md section 10, REFERENCE LIBRARY: lifelines Schoenfeld residuals with a
     # hand-coded 1 - KM(t-) transform: 0.00502, 11.27897, 1.41652, 7.14021, 0.68627, 0.15496,
     # 0.02304; global 17.65862 (7 df).
     table = ph_test(rossi_fit, *_data(rossi, ROSSI_FULL), "km_left")
@@ -91,7 +91,7 @@ def test_old_r_convention_full_model(rossi, rossi_fit):
 
 
 def test_lifelines_transforms_of_the_small_model(rossi, rossi_small_fit):
-    # REFERENCE_CHECKS.md section 10, REFERENCE LIBRARY lifelines: km 0.00004, 6.29397,
+    # docs/validation.md section 10, REFERENCE LIBRARY lifelines: km 0.00004, 6.29397,
     # 0.81672; rank 0.00050, 6.62195, 0.77146; identity 0.00800, 7.24519, 0.68123;
     # log 0.29389, 8.67764, 0.00514.
     expected = {
@@ -125,7 +125,7 @@ def test_residuals_equal_lifelines_and_sum_to_zero(rossi, rossi_small_fit):
     np.testing.assert_allclose(
         scaled[names].to_numpy(), ref_scaled.loc[scaled.index, names].to_numpy(), atol=1e-9
     )
-    # REFERENCE_CHECKS.md section 10: the Efron-weighted residuals sum to zero at the Efron
+    # docs/validation.md section 10: the Efron-weighted residuals sum to zero at the Efron
     # estimate, (-1e-7, -7e-6, -2e-6) up to convergence (abs 1e-4).
     own = schoenfeld_residuals(rossi_small_fit, *_data(rossi, names), scaled=False)
     np.testing.assert_allclose(own[names].sum(), 0.0, atol=1e-4)
@@ -135,7 +135,7 @@ def test_residuals_equal_lifelines_and_sum_to_zero(rossi, rossi_small_fit):
 def test_breslow_residuals_use_plain_risk_set_means(rossi):
     # REFERENCE LIBRARY: statsmodels PHReg.schoenfeld_residuals uses the plain risk-set mean;
     # under Breslow ties that is the right residual. Column sums with plain means at the
-    # Efron estimate: (0.0139, 0.4727, -0.5100) (REFERENCE_CHECKS.md section 10).
+    # Efron estimate: (0.0139, 0.4727, -0.5100) (docs/validation.md section 10).
     names = list(ROSSI_SMALL)
     time, event, X = _data(rossi, names)
     fit = fit_cox(time, event, X, names=names, ties="breslow")
@@ -193,7 +193,7 @@ def test_errors_name_the_problem(rossi, rossi_fit):
 
 def test_joint_groups_reproduce_single_and_global_statistics(rossi, rossi_small_fit):
     # PUBLISHED (from memory): Fox & Weisberg, cox.zph on fin + age + prio: chisq 0.00507,
-    # 6.54147, 0.77288 and GLOBAL 7.13184 (computed 7.13046; REFERENCE_CHECKS.md section 10)
+    # 6.54147, 0.77288 and GLOBAL 7.13184 (computed 7.13046; docs/validation.md section 10)
     data = _data(rossi, ROSSI_SMALL)
     single = ph_test_groups(rossi_small_fit, *data, ["fin", "age", "prio"], "km_left")
     np.testing.assert_allclose(single["statistic"], [0.00507, 6.54147, 0.77288], atol=1e-4)

@@ -56,7 +56,7 @@ def test_tables_and_findings(demo):
     assert set(audit.tables) == expected
     assert sorted(audit.tables["concordance"]["population"]) == ["cohort", "reference"]
     # REFERENCE LIBRARY statsmodels PHReg and lifelines agree with the fit (tolerances of
-    # REFERENCE_CHECKS.md: coef abs 1e-4, loglik abs 1e-6, E rel 1e-5)
+    # docs/validation.md: coef abs 1e-4, loglik abs 1e-6, E rel 1e-5)
     cross = audit.tables["crosscheck"].set_index(["library", "quantity"])
     assert cross.loc[("statsmodels", "coef"), "max_abs_difference"] < 1e-4
     assert cross.loc[("statsmodels", "loglik"), "max_abs_difference"] < 1e-6

@@ -193,7 +193,7 @@ def test_km_of_lung_cohort_matches_the_reference_values(tmp_path: Path) -> None:
     records = read_records(path, SPEC, cutoff="2030-01-01")
     full = build_cohort(records, "death", 1100)
     km = _km(full.frame["time"], full.frame["event"])
-    # REFERENCE_CHECKS.md 1.3 (REFERENCE LIBRARY: statsmodels SurvfuncRight on load_lung):
+    # docs/validation.md 1.3 (REFERENCE LIBRARY: statsmodels SurvfuncRight on load_lung):
     # S(180) = 0.721671, S(365) = 0.409242, S(730) = 0.115693.
     np.testing.assert_allclose(km.predict([180, 365, 730]), [0.721671, 0.409242, 0.115693],
                                rtol=1e-6)
@@ -211,7 +211,7 @@ def test_km_of_leukemia_cohort_matches_the_published_values(tmp_path: Path) -> N
                           arm["status"].to_numpy(), 10)
     cohort = build_cohort(read_records(path, SPEC, cutoff="2030-01-01"), "death", 365)
     km = _km(cohort.frame["time"] / 7, cohort.frame["event"])
-    # REFERENCE_CHECKS.md 1.1: Klein & Moeschberger Example 4.1 / Table 4.1A (from memory;
+    # docs/validation.md 1.1: Klein & Moeschberger Example 4.1 / Table 4.1A (from memory;
     # verified with lifelines, statsmodels, sksurv): S at weeks 6, 7, 10, 13, 16, 22, 23.
     np.testing.assert_allclose(
         km.predict([6, 7, 10, 13, 16, 22, 23]),

@@ -1,6 +1,6 @@
 """The evaluation API: evaluate(...) -> Evaluation and the evaluation folder.
 
-Reference values: REFERENCE_CHECKS.md sections 5 and 7 (rossi groups as programs), scipy.stats
+Reference values: docs/validation.md sections 5 and 7 (rossi groups as programs), scipy.stats
 (gamma posteriors) and lifelines (coefficients) computed in the test, and simulations with a
 known truth (seeded, invented cohorts whose outcomes are drawn from a rossi reference model
 times a known hazard ratio per program).
@@ -64,7 +64,7 @@ def spec_a(folder):
 
 @pytest.fixture(scope="module")
 def model_a(folder, rossi, spec_a):
-    """Model A of REFERENCE_CHECKS.md section 5 (all of rossi), saved as JSON."""
+    """Model A of docs/validation.md section 5 (all of rossi), saved as JSON."""
     path = rr.write_extract(folder / "ref.csv", rossi, rr.by(rossi, "fin"))
     records = read_records(path, spec_a)
     model = fit_reference(records, spec_a, rr.OUTCOME, rr.HORIZON_DAYS, rr.ROSSI_CUTOFF)
@@ -94,7 +94,7 @@ def test_programs_table_has_the_design_columns_in_order(evaluation):
 
 def test_programs_follow_the_reference_values(evaluation, rossi):
     programs = evaluation.programs.set_index("program")
-    # REFERENCE_CHECKS.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653 on
+    # docs/validation.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653 on
     # all 432; here R0004 (race 1, not arrested, no age) is excluded, so race 1 loses his E
     # (lifelines, baseline step-read at his week 52).
     cph = rr.lifelines_fit(rossi, rr.MODEL_A)
@@ -107,7 +107,7 @@ def test_programs_follow_the_reference_values(evaluation, rossi):
 def test_posteriors_equal_scipy_gamma(evaluation):
     programs = evaluation.programs
     o, e = programs["observed"].to_numpy(), programs["expected"].to_numpy()
-    # Conjugate gamma-Poisson (REFERENCE_CHECKS.md section 7, COMMON PRACTICE):
+    # Conjugate gamma-Poisson (docs/validation.md section 7, COMMON PRACTICE):
     # posterior Gamma(a + O, rate b + E), scipy.stats.gamma with scale = 1 / rate.
     post = stats.gamma(2.0 + o, scale=1.0 / (2.0 + e))
     np.testing.assert_allclose(programs["hr_mean"], post.mean(), rtol=1e-12)
@@ -129,7 +129,7 @@ def test_model_b_cohort_posterior_and_verdict(folder, rossi):
     cohort_path = rr.write_extract(folder / "b_cohort.csv", cohort, rr.by(cohort, "fin"))
     row = evaluate(cohort_path, model, prior=fixed_prior(2, 2), cutoff=rr.ROSSI_CUTOFF)
     row = row.programs.iloc[0]
-    # REFERENCE_CHECKS.md section 7, "rossi model B cohort": O 48, E 74.7406, a = b = 2 ->
+    # docs/validation.md section 7, "rossi model B cohort": O 48, E 74.7406, a = b = 2 ->
     # Gamma(50, 76.7406): mean 0.651546; 2.5% 0.48359; 97.5% 0.84415; P(HR<1) 0.999529.
     assert (row.observed, row.expected) == (48, pytest.approx(74.7406, rel=1e-5))
     np.testing.assert_allclose(

@@ -1,8 +1,8 @@
 """Expected events per recipient: rossi groups standing in for programs.
 
-Reference values: REFERENCE_CHECKS.md sections 4 and 5 (lifelines baseline read as a step
+Reference values: docs/validation.md sections 4 and 5 (lifelines baseline read as a step
 function, hand Breslow sums), and lifelines fits computed in the test with the baseline read
-as a step (never lifelines' interpolating predict functions; REFERENCE_CHECKS Conventions 3).
+as a step (never lifelines' interpolating predict functions; docs/validation.md Conventions 3).
 """
 
 from __future__ import annotations
@@ -46,14 +46,14 @@ def _expected(records, model, horizon_days=rr.HORIZON_DAYS, outcome=rr.OUTCOME):
 
 @pytest.fixture(scope="module")
 def model_a(folder, rossi):
-    """Model A of REFERENCE_CHECKS.md section 5 on all of rossi, programs = fin groups."""
+    """Model A of docs/validation.md section 5 on all of rossi, programs = fin groups."""
     records = _read(folder, "model_a", rossi, rr.by(rossi, "fin"), rr.MODEL_A)
     return records, _fit(records)
 
 
 @pytest.fixture(scope="module")
 def model_b(folder, rossi):
-    """Model B of REFERENCE_CHECKS.md section 5: reference fin = 0, cohort fin = 1."""
+    """Model B of docs/validation.md section 5: reference fin = 0, cohort fin = 1."""
     reference, cohort = rossi[rossi["fin"] == 0], rossi[rossi["fin"] == 1]
     ref_records = _read(folder, "b_ref", reference, rr.by(reference, "fin"), rr.MODEL_B)
     cohort_records = _read(folder, "b_cohort", cohort, rr.by(cohort, "fin"), rr.MODEL_B)
@@ -68,7 +68,7 @@ def test_model_a_expected_by_fin(model_a, rossi):
     records, model = model_a
     out = _expected(records, model)
     sums = _sums(out.frame)
-    # REFERENCE_CHECKS.md section 5, model A by fin: O 66 / 48, E 55.7993 / 58.2007
+    # docs/validation.md section 5, model A by fin: O 66 / 48, E 55.7993 / 58.2007
     # (lifelines, hand Breslow), E rel 1e-5.
     assert sums["event"].tolist() == [66, 48]
     np.testing.assert_allclose(sums["expected"], [55.7993, 58.2007], rtol=1e-5)
@@ -77,7 +77,7 @@ def test_model_a_expected_by_fin(model_a, rossi):
     np.testing.assert_allclose(
         out.frame["expected"], rr.lifelines_expected(cph, rossi, rossi), rtol=1e-5
     )
-    # Breslow on its own fitting data: total E = total O = 114 (REFERENCE_CHECKS.md section 4,
+    # Breslow on its own fitting data: total E = total O = 114 (docs/validation.md section 4,
     # COMMON PRACTICE property of the estimator), abs 1e-8.
     assert out.frame["expected"].sum() == pytest.approx(114.0, abs=1e-8)
 
@@ -85,7 +85,7 @@ def test_model_a_expected_by_fin(model_a, rossi):
 def test_model_a_expected_by_race(folder, rossi):
     records = _read(folder, "model_a_race", rossi, rr.by(rossi, "race"), rr.MODEL_A)
     sums = _sums(_expected(records, _fit(records)).frame)
-    # REFERENCE_CHECKS.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653.
+    # docs/validation.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653.
     assert sums.index.tolist() == ["race0", "race1"]
     assert sums["event"].tolist() == [12, 102]
     np.testing.assert_allclose(sums["expected"], [15.2347, 98.7653], rtol=1e-5)
@@ -94,7 +94,7 @@ def test_model_a_expected_by_race(folder, rossi):
 def test_one_recipient_of_the_full_model(folder, rossi):
     records = _read(folder, "full", rossi, rr.by(rossi, "fin"), rr.FULL)
     out = _expected(records, _fit(records)).frame
-    # REFERENCE_CHECKS.md section 4: rossi row 0 (week 20, arrested) E = 0.102132, with the
+    # docs/validation.md section 4: rossi row 0 (week 20, arrested) E = 0.102132, with the
     # jump at its own event time included (lifelines martingale residual, sksurv), rel 1e-5.
     assert out["expected"].iloc[0] == pytest.approx(0.102132, rel=1e-5)
     assert (out["recipient"].iloc[0], out["time"].iloc[0], out["event"].iloc[0]) == (
@@ -107,7 +107,7 @@ def test_one_recipient_of_the_full_model(folder, rossi):
 def test_model_b_reference_to_cohort(model_b, rossi):
     ref_records, cohort_records, model = model_b
     out = _expected(cohort_records, model).frame
-    # REFERENCE_CHECKS.md section 5, model B: evaluation cohort fin = 1, O 48, E 74.7406 by
+    # docs/validation.md section 5, model B: evaluation cohort fin = 1, O 48, E 74.7406 by
     # step evaluation (hand Breslow = lifelines baseline read as a step), rel 1e-5.
     assert (len(out), int(out["event"].sum())) == (216, 48)
     assert out["expected"].sum() == pytest.approx(74.7406, rel=1e-5)
@@ -121,7 +121,7 @@ def test_model_b_reference_to_cohort(model_b, rossi):
     # The log relative risk against the reference's average recipient, from lifelines.
     _, risk = rr.lifelines_hazard_and_risk(cph, reference, cohort, cohort["week"])
     np.testing.assert_allclose(out["lp"], np.log(risk), atol=1e-5)
-    # REFERENCE_CHECKS.md section 5: the reference population's own E = 66.0000 = its O.
+    # docs/validation.md section 5: the reference population's own E = 66.0000 = its O.
     own = _expected(ref_records, model).frame
     assert own["expected"].sum() == pytest.approx(66.0, abs=1e-8)
 
@@ -129,7 +129,7 @@ def test_model_b_reference_to_cohort(model_b, rossi):
 def test_model_b_horizon_truncated_at_26_weeks(model_b, rossi):
     _, cohort_records, model = model_b
     out = _expected(cohort_records, model, horizon_days=26 * 7).frame
-    # REFERENCE_CHECKS.md section 5, horizon-truncated E: O = 22, E = 34.1238 (hand Breslow
+    # docs/validation.md section 5, horizon-truncated E: O = 22, E = 34.1238 (hand Breslow
     # on the lifelines fit), rel 1e-5.
     assert int(out["event"].sum()) == 22
     assert out["expected"].sum() == pytest.approx(34.1238, rel=1e-5)
@@ -139,7 +139,7 @@ def test_model_b_horizon_truncated_at_26_weeks(model_b, rossi):
     theirs = rr.lifelines_expected(cph, reference, cohort, horizon_weeks=26)
     np.testing.assert_allclose(out["expected"], theirs, rtol=1e-5)
     # Followed to the full (cohort) horizon, every recipient's expected events are those at
-    # week 26 (REFERENCE_CHECKS.md section 5: H0_ref(26 | x = 0) = 0.179476).
+    # week 26 (docs/validation.md section 5: H0_ref(26 | x = 0) = 0.179476).
     hazard, risk = rr.lifelines_hazard_and_risk(cph, reference, cohort, np.full(216, 26.0))
     np.testing.assert_allclose(out["expected_at_horizon"], hazard * risk, rtol=1e-5)
 

@@ -129,7 +129,7 @@ def test_total_is_log_e_over_e_average_from_lifelines(explained, rossi):
     for program, race in (("race0", 0), ("race1", 1)):
         rows = (rossi["race"] == race).to_numpy()
         e, e_avg = float(hazard[rows] @ risk[rows]), float(hazard[rows].sum() * np.exp(offset))
-        # E: REFERENCE_CHECKS.md section 5, model A by race, 15.2347 / 98.7653.
+        # E: docs/validation.md section 5, model A by race, 15.2347 / 98.7653.
         assert e == pytest.approx({"race0": 15.2347, "race1": 98.7653}[program], rel=1e-5)
         row = totals.loc[program]
         assert row.expected == pytest.approx(e, rel=1e-5)
@@ -149,7 +149,7 @@ def test_groups_match_an_independent_path_integral(explained, rossi):
         theirs = _aumann_shapley(hazard[rows], lp_groups[rows])
         ours = table[(table["program"] == program) & (table["group"] != TOTAL)]
         assert ours["group"].tolist() == names
-        # Cox coefficients of two optimisers agree to ~1e-5 (REFERENCE_CHECKS.md Tolerances).
+        # Cox coefficients of two optimisers agree to ~1e-5 (docs/validation.md Tolerances).
         np.testing.assert_allclose(ours["contribution"], theirs, atol=1e-5)
 
 

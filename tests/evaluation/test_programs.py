@@ -1,6 +1,6 @@
 """The program table and survival curves, with rossi groups standing in for programs.
 
-Reference values: REFERENCE_CHECKS.md sections 1.3, 5 and 6; scipy.stats (Garwood limits,
+Reference values: docs/validation.md sections 1.3, 5 and 6; scipy.stats (Garwood limits,
 Poisson tails) and lifelines (Kaplan-Meier with its log(-log) limits, Cox baseline read as a
 step function) computed in the test.
 """
@@ -79,7 +79,7 @@ def test_columns_and_order(table_a):
 
 
 def test_model_a_observed_expected_and_garwood_limits_by_fin(table_a):
-    # REFERENCE_CHECKS.md section 5, model A by fin (lifelines, hand Breslow): O 66 / 48,
+    # docs/validation.md section 5, model A by fin (lifelines, hand Breslow): O 66 / 48,
     # E 55.7993 / 58.2007 (rel 1e-5); O/E 1.1828 (Garwood 95% 0.9148 to 1.5048) and
     # 0.8247 (0.6081 to 1.0935), printed to 4 decimals (abs 5e-5).
     assert table_a["observed"].tolist() == [66, 48]
@@ -92,7 +92,7 @@ def test_model_a_observed_expected_and_garwood_limits_by_fin(table_a):
 def test_model_a_by_race(folder, rossi):
     records = _read(folder, "a_race", rossi, rr.by(rossi, "race"), rr.MODEL_A)
     table = program_table(_expected(records, _fit(records))).set_index("program")
-    # REFERENCE_CHECKS.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653;
+    # docs/validation.md section 5, model A by race: O 12 / 102, E 15.2347 / 98.7653;
     # O/E 0.7877 (0.4070 to 1.3759) and 1.0328 (0.8421 to 1.2537).
     assert table["observed"].tolist() == [12, 102]
     np.testing.assert_allclose(table["expected"], [15.2347, 98.7653], rtol=1e-5)
@@ -107,7 +107,7 @@ def test_garwood_limits_and_exact_tails_against_scipy(model_a, level):
     table = program_table(_expected(records, model), level=level)
     o, e = table["observed"].to_numpy(), table["expected"].to_numpy()
     alpha = 1 - level
-    # Garwood (REFERENCE_CHECKS.md section 6): lower chi2(alpha/2; 2O)/2, upper
+    # Garwood (docs/validation.md section 6): lower chi2(alpha/2; 2O)/2, upper
     # chi2(1 - alpha/2; 2O + 2)/2, divided by E; scipy.stats.chi2, rel 1e-9.
     np.testing.assert_allclose(
         table["oe_lower"], stats.chi2.ppf(alpha / 2, 2 * o) / 2 / e, rtol=1e-9
@@ -121,7 +121,7 @@ def test_garwood_limits_and_exact_tails_against_scipy(model_a, level):
 
 
 def test_observed_survival_is_kaplan_meier_at_the_horizon(table_a, rossi):
-    # Censoring only at week 52, so KM = 1 - O / n (REFERENCE_CHECKS.md 1.3, closed form).
+    # Censoring only at week 52, so KM = 1 - O / n (docs/validation.md 1.3, closed form).
     np.testing.assert_allclose(
         table_a["observed_survival"], [1 - 66 / 216, 1 - 48 / 216], rtol=1e-12
     )
@@ -138,7 +138,7 @@ def test_observed_survival_is_kaplan_meier_at_the_horizon(table_a, rossi):
 
 @pytest.mark.parametrize(
     ("weeks", "observed", "expected"),
-    # REFERENCE_CHECKS.md section 5, model B fin = 1 cohort: observed KM 0.898148 (26 weeks)
+    # docs/validation.md section 5, model B fin = 1 cohort: observed KM 0.898148 (26 weeks)
     # and 0.777778 (52); expected, the mean of each recipient's predicted survival (direct
     # adjustment, COMMON PRACTICE), 0.849889 and 0.690845 (lifelines, sksurv), rel 1e-6.
     [(26, 0.898148, 0.849889), (52, 0.777778, 0.690845)],
@@ -178,7 +178,7 @@ def test_program_with_no_one_followed_to_the_horizon(odd_programs):
     # Expected survival is defined to the horizon whatever the follow-up (direct adjustment).
     assert 0 < row.expected_survival < 1
     assert row.oe_ratio == 0 and row.oe_lower == 0
-    # Garwood upper limit for O = 0: -ln(0.025) = 3.68888 (REFERENCE_CHECKS.md section 6).
+    # Garwood upper limit for O = 0: -ln(0.025) = 3.68888 (docs/validation.md section 6).
     assert row.oe_upper * row.expected == pytest.approx(3.68888, abs=1e-5)
 
 

@@ -1,6 +1,6 @@
 """The reference model: rossi through read_records -> fit_reference, and the JSON model file.
 
-Reference values: REFERENCE_CHECKS.md sections 3.1, 4 and 5 (rossi, lifelines.datasets), and
+Reference values: docs/validation.md sections 3.1, 4 and 5 (rossi, lifelines.datasets), and
 lifelines fits computed in the test. Time is in days (7 x weeks), which leaves a Cox fit
 unchanged; baselines are compared at 7 x the rossi weeks.
 """
@@ -19,19 +19,19 @@ from casemix import ReferenceModel, build_cohort, fit_reference, load_spec, read
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning, SpecError
 from casemix.model.reference import FORMAT_VERSION, reference_data
 
-# REFERENCE_CHECKS.md section 3.1, Efron: PUBLISHED (from memory; verified) Fox & Weisberg,
+# docs/validation.md section 3.1, Efron: PUBLISHED (from memory; verified) Fox & Weisberg,
 # appendix to An R Companion to Applied Regression; REFERENCE LIBRARY lifelines,
 # statsmodels, sksurv. Order fin, age, race, wexp, mar, paro, prio.
 FULL_COEF = [-0.379422, -0.057438, 0.313900, -0.149796, -0.433704, -0.084871, 0.091497]
 FULL_SE = [0.191379, 0.021999, 0.307993, 0.212224, 0.381868, 0.195757, 0.028649]
-# REFERENCE_CHECKS.md section 3.1, Breslow: PUBLISHED (from memory; verified) Allison,
+# docs/validation.md section 3.1, Breslow: PUBLISHED (from memory; verified) Allison,
 # Survival Analysis Using SAS; REFERENCE LIBRARY statsmodels, sksurv.
 BRESLOW_COEF = [-0.379022, -0.057246, 0.314130, -0.151115, -0.432783, -0.084983, 0.091112]
-# REFERENCE_CHECKS.md section 5, model A (lifelines = statsmodels).
+# docs/validation.md section 5, model A (lifelines = statsmodels).
 MODEL_A_COEF = [-0.059072, -0.155726, -0.444302, -0.055246, 0.087815]
-# REFERENCE_CHECKS.md section 5, model B (reference = rossi fin = 0; lifelines = statsmodels).
+# docs/validation.md section 5, model B (reference = rossi fin = 0; lifelines = statsmodels).
 MODEL_B_COEF = [-0.021285, 0.351932, -0.190559, -0.489512, -0.334676, 0.122538]
-# REFERENCE_CHECKS.md section 4: lifelines baseline_cumulative_hazard_ (step read), at the
+# docs/validation.md section 4: lifelines baseline_cumulative_hazard_ (step read), at the
 # covariate means, full Efron model; equal to a hand Breslow sum.
 CHECK_WEEKS = [1, 2, 8, 10, 20, 26, 30, 40, 52]
 H0_AT_MEANS = [0.001958, 0.003922, 0.023800, 0.029885, 0.083775, 0.115918, 0.130213,
@@ -88,13 +88,13 @@ def test_full_model_matches_published_fit(full_model, full_records):
     assert (fit.n, fit.n_events, fit.ties, fit.converged) == (432, 114, "efron", True)
     np.testing.assert_allclose(fit.coef, FULL_COEF, atol=1e-4)  # section 3.1, see FULL_COEF
     np.testing.assert_allclose(fit.se, FULL_SE, atol=1e-4)
-    # REFERENCE_CHECKS.md 3.1: LL -658.747659, null LL -675.380632 (abs 1e-6); LR 33.2659,
+    # docs/validation.md 3.1: LL -658.747659, null LL -675.380632 (abs 1e-6); LR 33.2659,
     # Wald 32.1126, score 33.5287 (abs 1e-3); Fox & Weisberg / statsmodels.
     assert fit.loglik == pytest.approx(-658.747659, abs=1e-6)
     assert fit.loglik_null == pytest.approx(-675.380632, abs=1e-6)
     tests = [fit.lr_test.statistic, fit.wald_test.statistic, fit.score_test.statistic]
     np.testing.assert_allclose(tests, [33.2659, 32.1126, 33.5287], atol=1e-3)
-    # REFERENCE_CHECKS.md 3.1 and 11: concordance 0.640329 (lifelines, sksurv).
+    # docs/validation.md 3.1 and 11: concordance 0.640329 (lifelines, sksurv).
     assert full_model.concordance == pytest.approx(0.6403292, abs=1e-6)
 
 
@@ -109,7 +109,7 @@ def test_breslow_ties_match_published_fit(full_records):
     fit = _fit(full_records, ties="breslow").fit
     assert fit.ties == "breslow"
     np.testing.assert_allclose(fit.coef, BRESLOW_COEF, atol=1e-4)  # section 3.1, Allison
-    # REFERENCE_CHECKS.md 3.1: Breslow LL -659.120606 (Allison's -2 log L 1318.241).
+    # docs/validation.md 3.1: Breslow LL -659.120606 (Allison's -2 log L 1318.241).
     assert fit.loglik == pytest.approx(-659.120606, abs=1e-6)
 
 
@@ -122,23 +122,23 @@ def test_model_b_coefficients_on_the_fin0_reference(folder, rossi):
     reference = rossi[rossi["fin"] == 0]
     path = rr.write_extract(folder / "fin0.csv", reference, rr.by(reference, "fin"))
     model = _fit(_records(folder, path, rr.MODEL_B, "model_b"))
-    assert (model.fit.n, model.fit.n_events) == (216, 66)  # REFERENCE_CHECKS.md section 5
+    assert (model.fit.n, model.fit.n_events) == (216, 66)  # docs/validation.md section 5
     np.testing.assert_allclose(model.fit.coef, MODEL_B_COEF, atol=1e-4)
-    # REFERENCE_CHECKS.md section 5: model B LL -333.715389 (lifelines = statsmodels).
+    # docs/validation.md section 5: model B LL -333.715389 (lifelines = statsmodels).
     assert model.fit.loglik == pytest.approx(-333.715389, abs=1e-6)
 
 
 def test_baseline_is_the_breslow_step_at_the_means(full_model, rossi):
     baseline = full_model.fit.baselines[0]
     days = 7.0 * np.asarray(CHECK_WEEKS)
-    # Printed to 6 decimals: half a unit of the last digit (REFERENCE_CHECKS.md, Tolerances).
+    # Printed to 6 decimals: half a unit of the last digit (docs/validation.md, Tolerances).
     np.testing.assert_allclose(baseline.at(days), H0_AT_MEANS, atol=5e-7)  # section 4
     # Between event times the step holds (weeks 52 and 51.5 differ; 26.5 reads 26's value).
     cph = rr.lifelines_fit(rossi, rr.FULL)
     weeks = np.arange(0, 52.01, 0.5)
     expected = rr.step_read(cph.baseline_cumulative_hazard_, weeks)
     np.testing.assert_allclose(baseline.at(7 * weeks), expected, rtol=1e-5, atol=1e-12)
-    # The step table holds the 49 distinct event times (REFERENCE_CHECKS.md 3.1 heading).
+    # The step table holds the 49 distinct event times (docs/validation.md 3.1 heading).
     assert baseline.times.size == 49 and baseline.last_time == rr.HORIZON_DAYS
 
 
@@ -181,7 +181,7 @@ def test_stratified_reference_matches_lifelines(folder, extract, rossi):
         hazard = rr.step_read(cph.baseline_cumulative_hazard_[level], rossi["week"][rows])
         theirs[rows] = hazard * risk[rows]
         # Breslow: within each stratum the expected events equal the observed (COMMON
-        # PRACTICE property, REFERENCE_CHECKS.md section 4).
+        # PRACTICE property, docs/validation.md section 4).
         assert ours[rows].sum() == pytest.approx(rossi["arrest"][rows].sum(), abs=1e-8)
     np.testing.assert_allclose(ours, theirs, rtol=1e-5)
 
@@ -373,5 +373,5 @@ def test_reference_data_reuses_a_given_design(full_records, full_model):
     assert data.design is full_model.design
     assert data.X.shape == (432, 7) and data.strata is None
     assert data.fingerprint() == full_model.fingerprint
-    # REFERENCE_CHECKS.md 3.1: 114 events; time in days = 7 x week.
+    # docs/validation.md 3.1: 114 events; time in days = 7 x week.
     assert int(data.event.sum()) == 114

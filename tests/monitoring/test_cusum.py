@@ -1,7 +1,7 @@
 """Tests of casemix.monitoring.cusum: the log-likelihood ratio, the CUSUM path, A(t) and N(t).
 
 Outside references: scipy.stats.poisson (log-likelihood ratio), the Poisson / survival-time
-CUSUM weights of REFERENCE_CHECKS.md section 9, and brute-force daily grids computed here
+CUSUM weights of docs/validation.md section 9, and brute-force daily grids computed here
 from the definition with the Cox fit's own step function (CoxFit.expected_events).
 """
 
@@ -37,7 +37,7 @@ def test_llr_is_the_poisson_log_likelihood_ratio(rho):
 
 
 def test_path_matches_the_reference_survival_time_weights():
-    # REFERENCE_CHECKS.md section 9, Poisson / survival-time weights (COMMON PRACTICE; scipy
+    # docs/validation.md section 9, Poisson / survival-time weights (COMMON PRACTICE; scipy
     # Poisson log-likelihood ratio): Lambda = 0.2, 0.5, 0.05, 1.0, 0.3, d = 0, 1, 0, 1, 0.
     expected = np.cumsum([0.2, 0.5, 0.05, 1.0, 0.3])
     observed = np.cumsum([0, 1, 0, 1, 0])

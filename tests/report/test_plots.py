@@ -18,9 +18,9 @@ from casemix.report.plots import (
 )
 from casemix.stats.verdict import verdict_colours
 
-# REFERENCE_CHECKS.md section 8: PUBLISHED method (Spiegelhalter 2005, from memory), numbers
+# docs/validation.md section 8: PUBLISHED method (Spiegelhalter 2005, from memory), numbers
 # REFERENCE LIBRARY scipy.stats.poisson ppf/cdf; tolerance abs 5e-5.
-# REFERENCE_CHECKS.md section 8, "uninterpolated quantile limits" (scipy.stats.poisson.ppf):
+# docs/validation.md section 8, "uninterpolated quantile limits" (scipy.stats.poisson.ppf):
 # the exact limits the funnel draws.
 FUNNEL_REFERENCE = {
     0.95: {1: (0.0, 3.0), 5: (0.2, 2.0), 20: (0.60, 1.45), 100: (0.81, 1.20)},
@@ -70,7 +70,7 @@ def test_funnel_labels_programs_and_skips_zero_expected():
 
 
 def test_numbers_at_risk_match_the_published_6mp_table():
-    # REFERENCE_CHECKS.md 1.1: 6-MP arm at risk at 6, 7, 10, 13, 16, 22, 23 weeks is 21, 17,
+    # docs/validation.md 1.1: 6-MP arm at risk at 6, 7, 10, 13, 16, 22, 23 weeks is 21, 17,
     # 15, 12, 11, 7, 6 (REFERENCE LIBRARY: lifelines event_table; a subject censored at an
     # event time is still at risk then).
     leukemia = lifelines("lifelines.datasets").load_leukemia()
@@ -80,7 +80,7 @@ def test_numbers_at_risk_match_the_published_6mp_table():
 
 
 def test_survival_figure_draws_the_kaplan_meier_curve_given():
-    # The curve comes from lifelines KaplanMeierFitter on the 6-MP arm; REFERENCE_CHECKS.md
+    # The curve comes from lifelines KaplanMeierFitter on the 6-MP arm; docs/validation.md
     # 1.1 (Klein & Moeschberger Table 4.1A, from memory; verified) gives S(23) = 0.448179.
     leukemia = lifelines("lifelines.datasets").load_leukemia()
     arm = leukemia[leukemia["Rx"] == 0]

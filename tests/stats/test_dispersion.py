@@ -12,7 +12,7 @@ from scipy import stats
 from casemix.audit import adjusted_funnel_limits, overdispersion
 from casemix.errors import InputError
 
-# Invented 8-program table (the same one REFERENCE_CHECKS.md section 7 uses for empirical Bayes).
+# Invented 8-program table (the same one docs/validation.md section 7 uses for empirical Bayes).
 OBSERVED = [2, 9, 15, 1, 22, 4, 30, 0]
 EXPECTED = [5.1, 4.2, 8.3, 3.7, 12.5, 6.0, 18.2, 2.4]
 

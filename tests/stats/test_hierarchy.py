@@ -24,7 +24,7 @@ PUMP_HYPER = Hyperprior(
     HyperDensity("shape", "expon", (("scale", 1.0),)),  # alpha ~ Exponential(1)
     HyperDensity("rate", "gamma", (("a", 0.1), ("scale", 1.0))),  # beta ~ Gamma(0.1, 1)
 )
-# Four programs without extra-Poisson spread (REFERENCE_CHECKS.md section 7, "EB boundary").
+# Four programs without extra-Poisson spread (docs/validation.md section 7, "EB boundary").
 FOUR_O = [0, 3, 12, 40]
 FOUR_E = [1.5, 2.1, 6.0, 41.3]
 

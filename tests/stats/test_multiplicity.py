@@ -20,7 +20,7 @@ def test_q_values_match_statsmodels(seed):
 
 
 def test_fdr_table_uses_exact_one_sided_p_values():
-    # REFERENCE_CHECKS.md section 6 pairs; REFERENCE LIBRARY scipy.stats.poisson:
+    # docs/validation.md section 6 pairs; REFERENCE LIBRARY scipy.stats.poisson:
     # P(Y >= O | E) = 0.020092, 0.350369, 1, 0.601008, 0.996981.
     o = [12, 3, 0, 40, 2]
     e = [6.0, 2.1, 1.5, 41.3, 8.0]

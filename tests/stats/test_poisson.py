@@ -1,4 +1,4 @@
-"""Exact Poisson limits, p-values and funnel limits against REFERENCE_CHECKS.md and scipy."""
+"""Exact Poisson limits, p-values and funnel limits against docs/validation.md and scipy."""
 
 from __future__ import annotations
 
@@ -17,7 +17,7 @@ from casemix.stats.poisson import (
 
 COUNTS = [0, 1, 2, 3, 5, 10, 20, 50, 100]
 
-# REFERENCE_CHECKS.md section 6, "Garwood 95%": PUBLISHED (from memory; verified) Garwood 1936
+# docs/validation.md section 6, "Garwood 95%": PUBLISHED (from memory; verified) Garwood 1936
 # and the usual exact Poisson limit tables (Breslow & Day 1987 vol. II; Geigy), matched with
 # scipy.stats.chi2 and scipy.stats.gamma.
 GARWOOD_95 = [
@@ -31,7 +31,7 @@ GARWOOD_95 = [
     (37.1110, 65.9188),
     (81.3640, 121.6268),
 ]
-# REFERENCE_CHECKS.md section 6, "Garwood 99%": REFERENCE LIBRARY scipy.stats.chi2.
+# docs/validation.md section 6, "Garwood 99%": REFERENCE LIBRARY scipy.stats.chi2.
 GARWOOD_99 = [
     (0.0, 5.2983),
     (0.0050, 7.4301),
@@ -44,7 +44,7 @@ GARWOOD_99 = [
     (76.1205, 128.7606),
 ]
 
-# REFERENCE_CHECKS.md section 6, "SMR = O/E with exact CI" and "exact one-sided p".
+# docs/validation.md section 6, "SMR = O/E with exact CI" and "exact one-sided p".
 PAIRS_O = [12, 3, 0, 40, 2]
 PAIRS_E = [6.0, 2.1, 1.5, 41.3, 8.0]
 
@@ -67,7 +67,7 @@ def test_garwood_matches_scipy_gamma_quantiles():
 
 
 def test_garwood_zero_count_closed_form():
-    # REFERENCE_CHECKS.md section 6, "O = 0 special cases": COMMON PRACTICE, upper = -ln 0.025.
+    # docs/validation.md section 6, "O = 0 special cases": COMMON PRACTICE, upper = -ln 0.025.
     lower, upper = garwood_interval(0, 0.95)
     assert lower == 0.0
     assert upper == pytest.approx(-np.log(0.025), abs=1e-9)
@@ -79,14 +79,14 @@ def test_garwood_keeps_shape():
 
 
 def test_oe_interval_matches_reference_smr_rows():
-    # REFERENCE_CHECKS.md section 6, "SMR = O/E with exact CI": REFERENCE LIBRARY scipy.stats.chi2.
+    # docs/validation.md section 6, "SMR = O/E with exact CI": REFERENCE LIBRARY scipy.stats.chi2.
     lower, upper = oe_interval(PAIRS_O, PAIRS_E)
     np.testing.assert_allclose(lower, [1.0334, 0.2946, 0.0, 0.6919, 0.0303], atol=5e-5)
     np.testing.assert_allclose(upper, [3.4936, 4.1749, 2.4593, 1.3189, 0.9031], atol=5e-5)
 
 
 def test_oe_interval_rossi_groups():
-    # REFERENCE_CHECKS.md section 5: rossi fin groups under model A (lifelines + hand Breslow),
+    # docs/validation.md section 5: rossi fin groups under model A (lifelines + hand Breslow),
     # fin=0: O 66, E 55.7993, Garwood 0.9148 to 1.5048; fin=1: O 48, E 58.2007, 0.6081 to
     # 1.0935; model B evaluation cohort: O 48, E 74.7406, 0.47352 to 0.85149.
     lower, upper = oe_interval([66, 48, 48], [55.7993, 58.2007, 74.7406])
@@ -103,7 +103,7 @@ def test_oe_interval_zero_expected_is_undefined():
 
 
 def test_exact_p_values_match_reference():
-    # REFERENCE_CHECKS.md section 6, "exact one-sided p": REFERENCE LIBRARY scipy.stats.poisson.
+    # docs/validation.md section 6, "exact one-sided p": REFERENCE LIBRARY scipy.stats.poisson.
     p_more, p_fewer = exact_p_values(PAIRS_O, PAIRS_E)
     np.testing.assert_allclose(p_more, [0.020092, 0.350369, 1.0, 0.601008, 0.996981], atol=1e-6)
     np.testing.assert_allclose(
@@ -131,7 +131,7 @@ def test_exact_p_values_zero_expected():
 @pytest.mark.parametrize(
     ("level", "lower_ref", "upper_ref"),
     [
-        # REFERENCE_CHECKS.md section 8, "95% limits": PUBLISHED method (Spiegelhalter 2005,
+        # docs/validation.md section 8, "95% limits": PUBLISHED method (Spiegelhalter 2005,
         # from memory), numbers from scipy.stats.poisson; E=1 raw lower -0.9320 clipped to 0.
         (0.95, [0.0, 0.1084, 0.5603, 0.8037], [2.9019, 1.8753, 1.4373, 1.1958]),
         # Same section, "99.8% limits"; E=1 and E=5 raw lower limits negative, clipped to 0.
@@ -157,7 +157,7 @@ def test_funnel_limits_interpolate_scipy_cdf_on_a_grid():
 
 def test_funnel_limits_are_continuous_in_e():
     # The interpolated quantile E * limit moves continuously with E, whereas the plain
-    # scipy.stats.poisson.ppf quantile jumps by whole events (REFERENCE_CHECKS.md section 8,
+    # scipy.stats.poisson.ppf quantile jumps by whole events (docs/validation.md section 8,
     # "uninterpolated quantile limits").
     grid = np.arange(1.0, 30.0, 1e-3)
     lower, upper = funnel_limits(grid, 0.95, method="interpolated")
@@ -169,7 +169,7 @@ def test_funnel_limits_are_continuous_in_e():
 def test_exact_funnel_limits_keep_the_exceedance_probability_at_every_e():
     # REFERENCE LIBRARY: scipy.stats.poisson. Under HR = 1, P(O/E > upper) <= 2.5% and
     # P(O/E < lower) <= 2.5% at every E, and the limits are tight (one count less inside
-    # would break it). REFERENCE_CHECKS.md section 8, "uninterpolated quantile limits": at
+    # would break it). docs/validation.md section 8, "uninterpolated quantile limits": at
     # E = 1, 5, 20, 100 the 95% limits are 0/3, 0.2/2.0, 0.60/1.45, 0.81/1.20.
     grid = np.geomspace(0.2, 400.0, 2001)
     for level in (0.95, 0.998):
@@ -193,7 +193,7 @@ def test_interpolated_funnel_limits_exceed_their_nominal_tail_at_small_e():
 
 
 def test_funnel_normal_approximation_agrees_for_large_e():
-    # REFERENCE_CHECKS.md section 8, "normal approximation": COMMON PRACTICE 1 +- 1.959964/sqrt(E).
+    # docs/validation.md section 8, "normal approximation": COMMON PRACTICE 1 +- 1.959964/sqrt(E).
     # At E = 10 000 the Poisson limits are within 0.001 of the normal ones.
     lower, upper = funnel_limits([10_000.0], 0.95)
     assert lower[0] == pytest.approx(1 - 1.959964 / 100, abs=1e-3)

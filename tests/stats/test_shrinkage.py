@@ -1,4 +1,4 @@
-"""Gamma-Poisson shrinkage against REFERENCE_CHECKS.md section 7, scipy and statsmodels."""
+"""Gamma-Poisson shrinkage against docs/validation.md section 7, scipy and statsmodels."""
 
 from __future__ import annotations
 
@@ -20,13 +20,13 @@ from casemix.stats.shrinkage import (
     posterior,
 )
 
-# REFERENCE_CHECKS.md section 7: the four (O, E) pairs of the fixed-prior rows.
+# docs/validation.md section 7: the four (O, E) pairs of the fixed-prior rows.
 FOUR_O = [0, 3, 12, 40]
 FOUR_E = [1.5, 2.1, 6.0, 41.3]
-# REFERENCE_CHECKS.md section 7, "EB, prior mean fixed at 1": invented 8-unit table.
+# docs/validation.md section 7, "EB, prior mean fixed at 1": invented 8-unit table.
 EIGHT_O = [2, 9, 15, 1, 22, 4, 30, 0]
 EIGHT_E = [5.1, 4.2, 8.3, 3.7, 12.5, 6.0, 18.2, 2.4]
-# REFERENCE_CHECKS.md section 7, "EB, classic pump-failure data": Gaver & O'Muircheartaigh
+# docs/validation.md section 7, "EB, classic pump-failure data": Gaver & O'Muircheartaigh
 # (1987), failures and operating times in thousand hours (values as recalled there).
 PUMP_O = [5, 1, 5, 14, 3, 19, 1, 1, 4, 22]
 PUMP_T = [94.32, 15.72, 62.88, 125.76, 5.24, 31.44, 1.048, 1.048, 2.096, 10.48]
@@ -42,7 +42,7 @@ def _eb_quietly(observed, expected, **kwargs):
 # ---------------------------------------------------------------- fixed priors, posteriors
 
 
-# REFERENCE_CHECKS.md section 7, rows "O=0, E=1.5" to "O=40, E=41.3": COMMON PRACTICE
+# docs/validation.md section 7, rows "O=0, E=1.5" to "O=40, E=41.3": COMMON PRACTICE
 # (conjugate gamma-Poisson), REFERENCE LIBRARY scipy.stats.gamma; a = b = 2.
 # (O, E) -> mean, median, 2.5%, 97.5%, P(HR>1), P(HR<1), P(HR>1.2), weight
 FIXED_ROWS = [
@@ -65,7 +65,7 @@ def test_posterior_fixed_prior_rows(pair, values):
 
 
 def test_prior_alone_is_posterior_with_no_data():
-    # REFERENCE_CHECKS.md section 7, "prior alone", a = b = 2 (scipy.stats.gamma): mean 1;
+    # docs/validation.md section 7, "prior alone", a = b = 2 (scipy.stats.gamma): mean 1;
     # 2.5% 0.121105; 97.5% 2.785822; P(HR>1) 0.406006; P(HR>1.2) 0.308441. E = 0 adds nothing.
     row = posterior([0], [0.0], fixed_prior(2.0, 2.0), upper_margin=1.2).iloc[0]
     np.testing.assert_allclose(
@@ -79,7 +79,7 @@ def test_prior_alone_is_posterior_with_no_data():
 
 
 def test_posterior_rossi_model_b_cohort():
-    # REFERENCE_CHECKS.md section 7, "rossi model B cohort": O 48, E 74.7406, a = b = 2,
+    # docs/validation.md section 7, "rossi model B cohort": O 48, E 74.7406, a = b = 2,
     # computed from section 5 with scipy.stats.gamma: mean 0.651546; 2.5% 0.48359;
     # 97.5% 0.84415; P(HR<1) 0.999529; P(HR>1.2) 6.1e-07.
     prior = fixed_prior(2.0, 2.0)
@@ -92,7 +92,7 @@ def test_posterior_rossi_model_b_cohort():
 
 
 def test_posterior_mean_is_weighted_average():
-    # REFERENCE_CHECKS.md section 7 header: posterior mean = w (O/E) + (1 - w) a/b.
+    # docs/validation.md section 7 header: posterior mean = w (O/E) + (1 - w) a/b.
     prior = fixed_prior(3.0, 2.5)
     table = posterior(EIGHT_O, EIGHT_E, prior)
     oe = np.array(EIGHT_O) / np.array(EIGHT_E)
@@ -134,7 +134,7 @@ def test_posterior_keeps_order_and_series_index():
 
 
 def test_log_marginal_reference_values():
-    # REFERENCE_CHECKS.md section 7, "negative-binomial marginal": COMMON PRACTICE formula,
+    # docs/validation.md section 7, "negative-binomial marginal": COMMON PRACTICE formula,
     # REFERENCE LIBRARY scipy.stats.nbinom: -1.119232; -2.056534; -3.659824; -4.328044.
     values = log_marginal(FOUR_O, FOUR_E, 2.0, 2.0)
     np.testing.assert_allclose(values, [-1.119232, -2.056534, -3.659824, -4.328044], atol=1e-6)
@@ -159,7 +159,7 @@ def test_log_marginal_with_zero_expected():
 @pytest.mark.parametrize(
     ("shape", "total"),
     [
-        # REFERENCE_CHECKS.md section 7, "EB boundary case" (computed with scipy).
+        # docs/validation.md section 7, "EB boundary case" (computed with scipy).
         (10.0, -10.623800),
         (100.0, -10.490432),
         (1000.0, -10.445068),
@@ -173,7 +173,7 @@ def test_log_marginal_rises_towards_poisson_limit(shape, total):
 
 
 def test_eb_mean_fixed_reference():
-    # REFERENCE_CHECKS.md section 7, "EB, prior mean fixed at 1": scipy.optimize on the hand
+    # docs/validation.md section 7, "EB, prior mean fixed at 1": scipy.optimize on the hand
     # formula and on scipy.stats.nbinom: a = b = 2.481020, max log marginal -23.403423.
     prior = empirical_bayes_prior(EIGHT_O, EIGHT_E)
     assert prior.method == "empirical_bayes"
@@ -206,7 +206,7 @@ def test_eb_mean_fixed_matches_scipy_nbinom_optimum():
 
 
 def test_eb_free_mean_reference():
-    # REFERENCE_CHECKS.md section 7, "EB, free prior mean": scipy.optimize and statsmodels
+    # docs/validation.md section 7, "EB, free prior mean": scipy.optimize and statsmodels
     # NegativeBinomial agree: a = 3.02518, b = 2.57234 (mean 1.17605), max log marginal
     # -23.197697.
     prior = empirical_bayes_prior(EIGHT_O, EIGHT_E, free_mean=True)
@@ -219,7 +219,7 @@ def test_eb_free_mean_reference():
 
 
 def test_eb_pump_data_reference():
-    # REFERENCE_CHECKS.md section 7, "EB, classic pump-failure data": scipy.optimize on the
+    # docs/validation.md section 7, "EB, classic pump-failure data": scipy.optimize on the
     # hand formula; statsmodels NB2 gives a = 0.8222686, b = 1.2589547, llf -32.263067;
     # EB posterior means (a + O) / (b + t) as listed there.
     prior = empirical_bayes_prior(PUMP_O, PUMP_T, free_mean=True)
@@ -268,7 +268,7 @@ def test_eb_free_mean_pump_matches_statsmodels():
 
 
 def test_eb_posteriors_reference():
-    # REFERENCE_CHECKS.md section 7, "EB posteriors with a": scipy.stats.gamma with
+    # docs/validation.md section 7, "EB posteriors with a": scipy.stats.gamma with
     # a = b = 2.481020: mean, 2.5%, 97.5%, P(HR>1.2) per (O, E).
     rows = [
         (0.59108, 0.17677, 1.25094, 0.03239),
@@ -287,7 +287,7 @@ def test_eb_posteriors_reference():
 
 
 def test_eb_boundary_falls_back_with_warning():
-    # REFERENCE_CHECKS.md section 7, "EB boundary case": the four pairs show no extra-Poisson
+    # docs/validation.md section 7, "EB boundary case": the four pairs show no extra-Poisson
     # spread; the marginal rises without limit towards the Poisson limit -10.438188.
     with pytest.warns(PriorWarning, match=r"vary no more than Poisson chance allows"):
         prior = empirical_bayes_prior(FOUR_O, FOUR_E)

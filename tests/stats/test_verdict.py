@@ -33,7 +33,7 @@ def _p_below(observed, expected, margin=1.0, a=2.0, b=2.0):
 
 
 def test_reference_rows_get_the_expected_verdicts():
-    # REFERENCE_CHECKS.md section 7 (scipy.stats.gamma, a = b = 2): (12, 6.0) has
+    # docs/validation.md section 7 (scipy.stats.gamma, a = b = 2): (12, 6.0) has
     # P(HR>1) 0.965819 < 0.975 -> consistent although the exact Poisson p is 0.020;
     # (40, 41.3) P(HR<1) 0.598665 -> consistent; (0, 1.5) P(HR<1) 0.864112 -> consistent;
     # rossi model B cohort (48, 74.7406) P(HR<1) 0.999529 -> favorable.
@@ -117,7 +117,7 @@ def test_what_if_distances_against_scipy():
 
 
 def test_distances_for_a_small_program():
-    # O = 0 at E = 1.5 under Gamma(2, 3.5): P(HR<1) 0.864112 (REFERENCE_CHECKS.md section 7)
+    # O = 0 at E = 1.5 under Gamma(2, 3.5): P(HR<1) 0.864112 (docs/validation.md section 7)
     # cannot reach 0.975 with fewer events, so the favorable distance is NA.
     row = assign_verdicts([0], [1.5], PRIOR).iloc[0]
     assert row.verdict == "consistent"

@@ -1,9 +1,9 @@
 """Tests of the Breslow baseline cumulative hazard and of expected events per subject.
 
-Reference values: REFERENCE_CHECKS.md sections 4 and 5 (lifelines baseline read as a step
+Reference values: docs/validation.md sections 4 and 5 (lifelines baseline read as a step
 function, scikit-survival, hand Breslow sums), or lifelines / statsmodels computed in the test.
 Neither statsmodels' raw baseline (one step late) nor lifelines' interpolated
-``predict_cumulative_hazard(times=...)`` is used as the truth (REFERENCE_CHECKS, Conventions).
+``predict_cumulative_hazard(times=...)`` is used as the truth (docs/validation.md, Conventions).
 """
 
 from __future__ import annotations
@@ -70,7 +70,7 @@ def _step_read(index: np.ndarray, values: np.ndarray, t: np.ndarray) -> np.ndarr
 
 def test_baseline_at_center_quoted_values(full_fit):
     # REFERENCE LIBRARY: lifelines 0.30.3 baseline_cumulative_hazard_ (step read), equal to a
-    # hand Breslow sum to 3e-17 (REFERENCE_CHECKS section 4, "Breslow H0 at covariate means")
+    # hand Breslow sum to 3e-17 (docs/validation.md section 4, "Breslow H0 at covariate means")
     expected = [0.001958, 0.003922, 0.023800, 0.029885, 0.083775, 0.115918, 0.130213,
                 0.193511, 0.274373]
     # tolerance: rel 1e-5 as listed, or half a unit of the printed 6th decimal if larger
@@ -84,7 +84,7 @@ def test_baseline_at_center_quoted_values(full_fit):
 
 def test_baseline_at_zero_quoted_values(full_fit):
     # REFERENCE LIBRARY: sksurv 0.28.0 cum_baseline_hazard_; lifelines value x exp(-beta.xbar)
-    # (REFERENCE_CHECKS section 4, "Breslow H0 at x = 0")
+    # (docs/validation.md section 4, "Breslow H0 at x = 0")
     expected = [0.006803, 0.013627, 0.082691, 0.103832, 0.291071, 0.402750, 0.452419,
                 0.672342, 0.953292]
     at_zero = full_fit.cumulative_hazard(CHECK_WEEKS, at_zero=True)
@@ -92,7 +92,7 @@ def test_baseline_at_zero_quoted_values(full_fit):
 
 
 def test_centring_conversion_factor(full_fit):
-    # REFERENCE_CHECKS Conventions 1: on rossi beta.xbar = -1.2454336, factor 3.4744410
+    # docs/validation.md Conventions 1: on rossi beta.xbar = -1.2454336, factor 3.4744410
     assert full_fit.coef @ full_fit.center == pytest.approx(-1.2454336, abs=5e-6)
     ratio = full_fit.cumulative_hazard(CHECK_WEEKS, at_zero=True) / full_fit.cumulative_hazard(
         CHECK_WEEKS
@@ -113,13 +113,13 @@ def test_baseline_matches_lifelines_at_every_event_time(rossi, full_fit):
     baseline = full_fit.baselines[0]
     event_times = np.unique(rossi.loc[rossi["arrest"] == 1, "week"].to_numpy(dtype=float))
     np.testing.assert_array_equal(baseline.times, event_times)
-    assert baseline.times.size == 49  # REFERENCE_CHECKS 3.1: 49 distinct event times
+    assert baseline.times.size == 49  # docs/validation.md 3.1: 49 distinct event times
     np.testing.assert_allclose(baseline.cumhaz, table.loc[event_times].to_numpy(), rtol=1e-7)
     assert baseline.last_time == 52.0
 
 
 def test_breslow_ties_baseline_against_shifted_statsmodels(rossi):
-    """statsmodels' Breslow baseline (x = 0) is one failure time late (REFERENCE_CHECKS,
+    """statsmodels' Breslow baseline (x = 0) is one failure time late (docs/validation.md,
     Conventions 2): its value at the (k+1)-th failure time is the right-continuous H0 at the
     k-th. Shifted back, it is an outside reference for the Breslow-ties fit."""
     time, event, X = _arrays(rossi)
@@ -135,7 +135,7 @@ def test_step_function_conventions(full_fit):
     baseline = full_fit.baselines[0]
     assert isinstance(baseline, BaselineHazard)
     # right-continuous step: 0 before the first event time, the jump at a time included, flat
-    # in between (lifelines' table read as a step function, REFERENCE_CHECKS section 4)
+    # in between (lifelines' table read as a step function, docs/validation.md section 4)
     values = baseline.at([0.0, 0.5, 1.0, 1.5, 1.999, 2.0])
     np.testing.assert_allclose(values, [0, 0, 0.001958, 0.001958, 0.001958, 0.003922],
                                rtol=0, atol=5e-7)
@@ -151,7 +151,7 @@ def test_refuses_times_beyond_follow_up(full_fit):
     X = load_rossi()[list(ROSSI_COVARIATES)].to_numpy(dtype=float)[:2]
     with pytest.raises(InputError, match="52"):
         full_fit.expected_events([20.0, 80.0], X)
-    # allowed explicitly: held at the last value (REFERENCE_CHECKS section 4: H0(52) = 0.274373)
+    # allowed explicitly: held at the last value (docs/validation.md section 4: H0(52) = 0.274373)
     held = full_fit.cumulative_hazard([53.0, 500.0], allow_beyond=True)
     np.testing.assert_allclose(held, 0.274373, rtol=1e-5)
     held_e = full_fit.expected_events([20.0, 80.0], X, allow_beyond=True)
@@ -166,7 +166,7 @@ def test_refuses_times_beyond_follow_up(full_fit):
 @pytest.mark.parametrize("ties", ["efron", "breslow"])
 def test_sum_expected_equals_observed(rossi, ties):
     # COMMON PRACTICE: property of the Breslow estimator at any beta; on rossi sum E = 114
-    # (REFERENCE_CHECKS section 4; lifelines martingale residuals sum to -1.4e-14)
+    # (docs/validation.md section 4; lifelines martingale residuals sum to -1.4e-14)
     time, event, X = _arrays(rossi)
     fit = fit_cox(time, event, X, ties=ties)
     assert fit.expected_events(time, X).sum() == pytest.approx(114.0, abs=1e-8)
@@ -175,7 +175,7 @@ def test_sum_expected_equals_observed(rossi, ties):
 def test_row_zero_expected_count(full_fit):
     # REFERENCE LIBRARY: lifelines martingale residuals (E = event - residual) and sksurv
     # predict_cumulative_hazard_function at t = 20: E = 0.102132, residual 0.897868
-    # (REFERENCE_CHECKS section 4; rossi row 0: week 20, arrested)
+    # (docs/validation.md section 4; rossi row 0: week 20, arrested)
     X = load_rossi()[list(ROSSI_COVARIATES)].to_numpy(dtype=float)[:1]
     assert full_fit.expected_events([20.0], X)[0] == pytest.approx(0.102132, rel=1e-5)
 
@@ -194,7 +194,7 @@ def test_expected_events_equal_lifelines_martingale(rossi, full_fit):
 @pytest.mark.parametrize(
     ("ties", "by", "expected"),
     [
-        # REFERENCE LIBRARY: lifelines and hand Breslow (REFERENCE_CHECKS section 5, model A)
+        # REFERENCE LIBRARY: lifelines and hand Breslow (docs/validation.md section 5, model A)
         ("efron", "fin", {0: 55.7993, 1: 58.2007}),
         ("efron", "race", {0: 15.2347, 1: 98.7653}),
         # REFERENCE LIBRARY: statsmodels (Breslow) + hand Breslow baseline (section 5)
@@ -227,7 +227,7 @@ def model_b(rossi):
     ("ties", "expected"),
     [
         # REFERENCE LIBRARY: hand Breslow step evaluation = lifelines baseline read as a step
-        # function, 74.74057 (REFERENCE_CHECKS section 5; lifelines' interpolating
+        # function, 74.74057 (docs/validation.md section 5; lifelines' interpolating
         # predict_cumulative_hazard(times=) would give 74.82251, which is wrong)
         ("efron", 74.7406),
         # same source, Breslow ties: 74.7211
@@ -238,7 +238,7 @@ def test_reference_to_cohort(model_b, ties, expected):
     reference, cohort = model_b
     time, event, X = _arrays(reference, MODEL_B)
     fit = fit_cox(time, event, X, ties=ties, names=MODEL_B)
-    assert (fit.n, fit.n_events) == (216, 66)  # REFERENCE_CHECKS section 5
+    assert (fit.n, fit.n_events) == (216, 66)  # docs/validation.md section 5
     # the reference population's own E equals its O = 66 (COMMON PRACTICE Breslow property)
     assert fit.expected_events(time, X).sum() == pytest.approx(66.0, abs=1e-8)
     c_time, c_event, c_X = _arrays(cohort, MODEL_B)
@@ -247,7 +247,7 @@ def test_reference_to_cohort(model_b, ties, expected):
 
 
 def test_model_b_coefficients(model_b):
-    # REFERENCE LIBRARY: lifelines = statsmodels (REFERENCE_CHECKS section 5, model B)
+    # REFERENCE LIBRARY: lifelines = statsmodels (docs/validation.md section 5, model B)
     reference, _ = model_b
     time, event, X = _arrays(reference, MODEL_B)
     fit = fit_cox(time, event, X, names=MODEL_B)
@@ -258,7 +258,7 @@ def test_model_b_coefficients(model_b):
 
 
 def test_horizon_truncated_expected(model_b):
-    # hand Breslow on the lifelines fit (REFERENCE_CHECKS section 5): time = min(week, 26),
+    # hand Breslow on the lifelines fit (docs/validation.md section 5): time = min(week, 26),
     # event only for an arrest at <= 26 weeks -> O = 22, E = 34.1238
     reference, cohort = model_b
     fit = fit_cox(*_arrays(reference, MODEL_B), names=MODEL_B)
@@ -269,7 +269,7 @@ def test_horizon_truncated_expected(model_b):
 
 
 def test_expected_survival_at_horizons(model_b):
-    # REFERENCE LIBRARY: lifelines / sksurv predict_survival_function, hand (REFERENCE_CHECKS
+    # REFERENCE LIBRARY: lifelines / sksurv predict_survival_function, hand (docs/validation.md
     # section 5): mean predicted survival 0.849889 at 26 and 0.690845 at 52 weeks;
     # H0_ref(26 | x=0) = 0.179476, H0_ref(52 | x=0) = 0.426239
     reference, cohort = model_b

@@ -15,7 +15,7 @@ ROSSI_FULL = ("fin", "age", "race", "wexp", "mar", "paro", "prio")
 
 
 def test_hand_example():
-    # REFERENCE_CHECKS.md section 11, COMMON PRACTICE definition (Harrell et al. 1982),
+    # docs/validation.md section 11, COMMON PRACTICE definition (Harrell et al. 1982),
     # counts confirmed by lifelines and sksurv: 10 comparable, 9 concordant, 1 tied -> 0.95.
     result = concordance([2, 3, 5, 7, 8, 10], [1, 0, 1, 1, 0, 1], [0.9, 0.3, 0.6, 0.6, 0.1, 0.2])
     assert (result.concordant, result.discordant, result.tied_risk, result.comparable) == (
@@ -30,7 +30,7 @@ def test_hand_example():
 def test_rossi_linear_predictor(rossi, rossi_fit):
     lp = rossi_fit.linear_predictor(rossi[list(ROSSI_FULL)].to_numpy(float))
     result = concordance(rossi["week"], rossi["arrest"], lp)
-    # REFERENCE_CHECKS.md section 11, REFERENCE LIBRARY lifelines and sksurv:
+    # docs/validation.md section 11, REFERENCE LIBRARY lifelines and sksurv:
     # C = 0.6403292; concordant 27242, discordant 15291, tied risk 49.
     assert (result.concordant, result.discordant, result.tied_risk) == (27242, 15291, 49)
     assert result.c == pytest.approx(0.6403292, abs=1e-7)
@@ -41,7 +41,7 @@ def test_rossi_linear_predictor(rossi, rossi_fit):
 
 
 def test_rossi_prio_many_tied_scores(rossi):
-    # REFERENCE_CHECKS.md section 11, REFERENCE LIBRARY lifelines, sksurv: 22075 / 14586 /
+    # docs/validation.md section 11, REFERENCE LIBRARY lifelines, sksurv: 22075 / 14586 /
     # 5921 tied, C = 0.5879362.
     result = concordance(rossi["week"], rossi["arrest"], rossi["prio"])
     assert (result.concordant, result.discordant, result.tied_risk) == (22075, 14586, 5921)
@@ -49,7 +49,7 @@ def test_rossi_prio_many_tied_scores(rossi):
 
 
 def _brute(time, event, risk):
-    """All pairs, straight from the definition (COMMON PRACTICE, REFERENCE_CHECKS convention 9)."""
+    """All pairs, straight from the definition (COMMON PRACTICE; docs/validation.md conv. 9)."""
     conc = disc = tied = 0
     for i in np.flatnonzero(event):
         later = (time > time[i]) | ((time == time[i]) & (event == 0))

@@ -1,7 +1,7 @@
 """Tests of ``casemix.survival.fit_cox``: coefficients, standard errors, likelihoods and tests.
 
 Expected numbers are published fits (recalled, then recomputed with reference libraries) quoted
-from REFERENCE_CHECKS.md, or are computed inside the test with lifelines / statsmodels on the
+from docs/validation.md, or are computed inside the test with lifelines / statsmodels on the
 datasets shipped in ``lifelines.datasets``.
 """
 
@@ -32,7 +32,7 @@ load_rossi = lazy("lifelines.datasets", "load_rossi")
 
 ROSSI_COVARIATES = ("fin", "age", "race", "wexp", "mar", "paro", "prio")
 
-# Tiny data set with a closed-form answer (REFERENCE_CHECKS.md section 3.7).
+# Tiny data set with a closed-form answer (docs/validation.md section 3.7).
 TINY_TIME = np.array([1.0, 1.0, 2.0, 3.0, 4.0, 5.0])
 TINY_EVENT = np.array([1, 1, 1, 0, 1, 0])
 TINY_X = np.array([[1.0], [0.0], [1.0], [0.0], [1.0], [0.0]])
@@ -66,7 +66,7 @@ def _sm_model(time, event, X, ties, strata=None) -> PHReg:
 
 def _tight_lifelines(frame, duration, event, **kwargs) -> CoxPHFitter:
     # lifelines' default stopping rule leaves coefficients ~4e-5 from the optimum
-    # (REFERENCE_CHECKS.md section 3.7); tighten it so the comparison can be strict.
+    # (docs/validation.md section 3.7); tighten it so the comparison can be strict.
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         return CoxPHFitter().fit(
@@ -103,7 +103,8 @@ class Case:
 CASES = [
     # PUBLISHED (from memory; verified): Fox & Weisberg, "Cox Proportional-Hazards Regression
     # for Survival Data in R" (appendix to An R Companion to Applied Regression).
-    # REFERENCE LIBRARY: lifelines 0.30.3, statsmodels 0.15.0, sksurv 0.28.0 (REFERENCE_CHECKS 3.1)
+    # REFERENCE LIBRARY: lifelines 0.30.3, statsmodels 0.15.0, sksurv 0.28.0
+    # (docs/validation.md 3.1)
     Case(
         "rossi-efron", load_rossi, "week", "arrest", ROSSI_COVARIATES, "efron",
         coef=(-0.379422, -0.057438, 0.313900, -0.149796, -0.433704, -0.084871, 0.091497),
@@ -112,7 +113,7 @@ CASES = [
     ),
     # PUBLISHED (from memory; verified): Allison, Survival Analysis Using SAS, recidivism
     # example, Breslow ties (-2 log L 1318.241 / 1351.367). REFERENCE LIBRARY: statsmodels,
-    # sksurv (REFERENCE_CHECKS 3.1)
+    # sksurv (docs/validation.md 3.1)
     Case(
         "rossi-breslow", load_rossi, "week", "arrest", ROSSI_COVARIATES, "breslow",
         coef=(-0.379022, -0.057246, 0.314130, -0.151115, -0.432783, -0.084983, 0.091112),
@@ -120,28 +121,28 @@ CASES = [
         loglik=-659.120606, loglik_null=-675.683389, n=432, n_events=114,
     ),
     # PUBLISHED (from memory; verified): Kleinbaum & Klein, Survival Analysis: A Self-Learning
-    # Text, ch. 3 (1.509, SE 0.410, -2 ln L 172.759; null 187.970). REFERENCE_CHECKS 3.2
+    # Text, ch. 3 (1.509, SE 0.410, -2 ln L 172.759; null 187.970). docs/validation.md 3.2
     Case(
         "leukemia-rx-breslow", _leukemia, "t", "status", ("Rx",), "breslow",
         coef=(1.50919,), se=(0.40956,), loglik=-172.759 / 2, loglik_null=-187.970 / 2,
         n=42, n_events=30, ll_tol=0.0005 / 2,
     ),
     # PUBLISHED (from memory; verified): Venables & Ripley, MASS, Cox fit to the gehan data.
-    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (REFERENCE_CHECKS 3.2)
+    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (docs/validation.md 3.2)
     Case(
         "leukemia-rx-efron", _leukemia, "t", "status", ("Rx",), "efron",
         coef=(1.57212,), se=(0.41240,), loglik=-85.00842, loglik_null=-93.18427,
         n=42, n_events=30, ll_tol=5e-6,
     ),
     # PUBLISHED (from memory; verified): Kleinbaum & Klein ch. 3 (1.294, 1.604; SE 0.422,
-    # 0.329; -2 ln L 144.559). REFERENCE_CHECKS 3.2
+    # 0.329; -2 ln L 144.559). docs/validation.md 3.2
     Case(
         "leukemia-rx-wbc-breslow", _leukemia, "t", "status", ("Rx", "logWBC"), "breslow",
         coef=(1.29407, 1.60434), se=(0.42210, 0.32933), loglik=-144.559 / 2,
         loglik_null=-187.970 / 2, n=42, n_events=30, ll_tol=0.0005 / 2,
     ),
     # PUBLISHED (from memory; verified): Kleinbaum & Klein (2.355, 1.803, -0.342;
-    # -2 ln L 144.131). REFERENCE_CHECKS 3.2
+    # -2 ln L 144.131). docs/validation.md 3.2
     Case(
         "leukemia-interaction-breslow", _leukemia, "t", "status",
         ("Rx", "logWBC", "RxlogWBC"), "breslow",
@@ -149,13 +150,13 @@ CASES = [
         loglik=-144.131 / 2, loglik_null=-187.970 / 2, n=42, n_events=30, ll_tol=0.0005 / 2,
     ),
     # PUBLISHED (from memory; verified): Kleinbaum & Klein (1.391, 1.594, 0.263;
-    # -2 ln L 144.218). REFERENCE_CHECKS 3.2
+    # -2 ln L 144.218). docs/validation.md 3.2
     Case(
         "leukemia-sex-breslow", _leukemia, "t", "status", ("Rx", "logWBC", "sex"), "breslow",
         coef=(1.39088, 1.59362, 0.26317), se=(0.45665, 0.33000, 0.44944),
         loglik=-144.218 / 2, loglik_null=-187.970 / 2, n=42, n_events=30, ll_tol=0.0005 / 2,
     ),
-    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (REFERENCE_CHECKS 3.2, Efron rows)
+    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (docs/validation.md 3.2, Efron rows)
     Case(
         "leukemia-rx-wbc-efron", _leukemia, "t", "status", ("Rx", "logWBC"), "efron",
         coef=(1.38608, 1.69089), se=(0.42480, 0.33590), loglik=-69.82810,
@@ -173,14 +174,14 @@ CASES = [
         loglik_null=-93.18427, n=42, n_events=30, ll_tol=5e-6,
     ),
     # PUBLISHED (from memory; verified): Klein & Moeschberger, larynx cancer example, ch. 8.
-    # REFERENCE LIBRARY: statsmodels, sksurv (REFERENCE_CHECKS 3.3)
+    # REFERENCE LIBRARY: statsmodels, sksurv (docs/validation.md 3.3)
     Case(
         "larynx-breslow", load_larynx, "time", "death",
         ("Stage_II", "Stage_III", "Stage_IV", "age"), "breslow",
         coef=(0.13856, 0.63835, 1.69306, 0.01890), se=(0.46231, 0.35608, 0.42221, 0.01425),
         loglik=-188.17944, loglik_null=-197.21292, n=90, n_events=50, ll_tol=5e-6,
     ),
-    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (REFERENCE_CHECKS 3.3)
+    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (docs/validation.md 3.3)
     Case(
         "larynx-efron", load_larynx, "time", "death",
         ("Stage_II", "Stage_III", "Stage_IV", "age"), "efron",
@@ -188,20 +189,20 @@ CASES = [
         loglik=-187.70736, loglik_null=-196.86348, n=90, n_events=50, ll_tol=5e-6,
     ),
     # PUBLISHED (from memory; verified): R survival, coxph(Surv(time, status) ~ age + sex,
-    # lung). REFERENCE LIBRARY: lifelines, statsmodels (REFERENCE_CHECKS 3.4). In lifelines
+    # lung). REFERENCE LIBRARY: lifelines, statsmodels (docs/validation.md 3.4). In lifelines
     # 0.30.3 the loaded status is already 0/1 (165 deaths).
     Case(
         "lung-efron", load_lung, "time", "status", ("age", "sex"), "efron",
         coef=(0.017045, -0.513219), se=(0.009223, 0.167458), loglik=-742.848246,
         loglik_null=None, n=228, n_events=165, coef_tol=1e-5, se_tol=5e-6,
     ),
-    # REFERENCE LIBRARY: statsmodels, sksurv (REFERENCE_CHECKS 3.4)
+    # REFERENCE LIBRARY: statsmodels, sksurv (docs/validation.md 3.4)
     Case(
         "lung-breslow", load_lung, "time", "status", ("age", "sex"), "breslow",
         coef=(0.017013, -0.512565), se=(0.009222, 0.167462), loglik=-743.079654,
         loglik_null=None, n=228, n_events=165, coef_tol=1e-5, se_tol=5e-6,
     ),
-    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (REFERENCE_CHECKS 3.5; lifelines
+    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (docs/validation.md 3.5; lifelines
     # prints -0.03562 for black_male, statsmodels and sksurv -0.03561)
     Case(
         "kidney-efron", load_kidney_transplant, "time", "death",
@@ -209,14 +210,14 @@ CASES = [
         coef=(0.050670, -0.03562, 0.09740, 0.45379), se=(0.00720, 0.31222, 0.19919, 0.31223),
         loglik=-849.70165, loglik_null=-879.17051, n=863, n_events=140, ll_tol=5e-6,
     ),
-    # REFERENCE LIBRARY: statsmodels, sksurv (REFERENCE_CHECKS 3.5)
+    # REFERENCE LIBRARY: statsmodels, sksurv (docs/validation.md 3.5)
     Case(
         "kidney-breslow", load_kidney_transplant, "time", "death",
         ("age", "black_male", "white_male", "black_female"), "breslow",
         coef=(0.05067, -0.03564, 0.09734, 0.45385), se=None,
         loglik=-849.71958, loglik_null=-879.18488, n=863, n_events=140, ll_tol=5e-6,
     ),
-    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (REFERENCE_CHECKS 3.5, age only)
+    # REFERENCE LIBRARY: lifelines, statsmodels, sksurv (docs/validation.md 3.5, age only)
     Case(
         "kidney-age-efron", load_kidney_transplant, "time", "death", ("age",), "efron",
         coef=(0.05107,), se=(0.00714,), loglik=-850.80068, loglik_null=None,
@@ -273,9 +274,9 @@ def test_fit_matches_statsmodels_exactly(case):
 
 TEST_VALUES = [
     # PUBLISHED (from memory; verified): Fox & Weisberg print LR 33.27, Wald 32.11, score 33.53
-    # on 7 df; REFERENCE LIBRARY: statsmodels (REFERENCE_CHECKS 3.1)
+    # on 7 df; REFERENCE LIBRARY: statsmodels (docs/validation.md 3.1)
     ("rossi-efron", 7, (33.2659, 2.362e-05), (32.1126, 3.871e-05), (33.5287, 2.110e-05)),
-    # REFERENCE LIBRARY: statsmodels (REFERENCE_CHECKS 3.1, Breslow row; p from scipy below)
+    # REFERENCE LIBRARY: statsmodels (docs/validation.md 3.1, Breslow row; p from scipy below)
     ("rossi-breslow", 7, (33.1256, None), (31.9810, None), (33.3828, None)),
 ]
 
@@ -299,10 +300,10 @@ def test_global_tests(name, df, lr, wald, score):
 
 def test_lr_test_published_small_models():
     # PUBLISHED (from memory; verified): Venables & Ripley LR 16.4 for the gehan fit
-    # (REFERENCE_CHECKS 3.2: LL -85.00842, null -93.18427 -> 16.3517)
+    # (docs/validation.md 3.2: LL -85.00842, null -93.18427 -> 16.3517)
     fit, _ = _fit_case(next(c for c in CASES if c.name == "leukemia-rx-efron"))
     assert fit.lr_test.statistic == pytest.approx(2 * (-85.00842 + 93.18427), abs=2e-5)
-    # PUBLISHED (from memory; verified): R lung example, LR 14.12 on 2 df (REFERENCE_CHECKS 3.4)
+    # PUBLISHED (from memory; verified): R lung example, LR 14.12 on 2 df (docs/validation.md 3.4)
     fit, _ = _fit_case(next(c for c in CASES if c.name == "lung-efron"))
     assert fit.lr_test.statistic == pytest.approx(14.1231, abs=1e-3)
     assert fit.lr_test.df == 2
@@ -324,7 +325,7 @@ def test_score_test_matches_statsmodels_derivatives(ties):
 
 
 # --------------------------------------------------------------------------------------------
-# Tiny closed-form data (REFERENCE_CHECKS 3.7)
+# Tiny closed-form data (docs/validation.md 3.7)
 # --------------------------------------------------------------------------------------------
 
 
@@ -332,7 +333,7 @@ def _tiny_loglik(beta: float, ties: str) -> float:
     """Hand formula: 3b - 4 ln(1 + e^b) - 2 ln 3 - ln 2 (Breslow); Efron adds ln(6/5).
 
     COMMON PRACTICE formulas (Breslow 1974; Efron 1977) written out for the tiny data;
-    REFERENCE_CHECKS 3.7 confirms them with statsmodels ``loglike``.
+    docs/validation.md 3.7 confirms them with statsmodels ``loglike``.
     """
     breslow = 3 * beta - 4 * np.log1p(np.exp(beta)) - 2 * np.log(3) - np.log(2)
     return breslow + (np.log(6 / 5) if ties == "efron" else 0.0)
@@ -341,7 +342,8 @@ def _tiny_loglik(beta: float, ties: str) -> float:
 @pytest.mark.parametrize(
     ("ties", "loglik_null", "loglik_max"),
     [
-        # closed form (REFERENCE_CHECKS 3.7): -2 ln 6 - ln 4 - ln 2; 3 ln 3 - 2 ln 12 - ln 8 - ln 4
+        # closed form (docs/validation.md 3.7):
+        # -2 ln 6 - ln 4 - ln 2; 3 ln 3 - 2 ln 12 - ln 8 - ln 4
         ("breslow", -5.662960, -5.139712),
         # closed form: -ln 6 - ln 5 - ln 4 - ln 2; Efron max = Breslow max + ln(6/5)
         ("efron", -5.480639, -4.957391),
@@ -427,7 +429,7 @@ def test_one_newton_step_uses_exact_derivatives(ties, start):
 
 
 def test_forced_non_convergence_tiny_closed_form():
-    # closed form: one Newton step from 0 is U(0)/I(0) = 1/1 = 1 (REFERENCE_CHECKS 3.7)
+    # closed form: one Newton step from 0 is U(0)/I(0) = 1/1 = 1 (docs/validation.md 3.7)
     with pytest.warns(ConvergenceWarning, match="(?i)iteration"):
         fit = fit_cox(TINY_TIME, TINY_EVENT, TINY_X, ties="breslow", max_iter=1)
     assert not fit.converged

@@ -1,6 +1,6 @@
 """Tests of ``casemix.survival.kaplan_meier`` against published tables and lifelines.
 
-Reference values: REFERENCE_CHECKS.md section 1, or lifelines ``KaplanMeierFitter`` computed in
+Reference values: docs/validation.md section 1, or lifelines ``KaplanMeierFitter`` computed in
 the test on the datasets shipped in ``lifelines.datasets``.
 """
 
@@ -31,7 +31,7 @@ def _arm(rx: int):
 
 @pytest.fixture(scope="module")
 def six_mp() -> KaplanMeier:
-    time, event = _arm(0)  # Rx = 0 is the 6-MP arm (REFERENCE_CHECKS section 1)
+    time, event = _arm(0)  # Rx = 0 is the 6-MP arm (docs/validation.md section 1)
     return kaplan_meier(time, event)
 
 
@@ -42,19 +42,19 @@ def _lifelines(time, event, weights=None, alpha=0.05) -> KaplanMeierFitter:
 
 
 def test_six_mp_data_as_published():
-    # Freireich et al. 1963 / Gehan 1965 as listed in REFERENCE_CHECKS section 1: 21
+    # Freireich et al. 1963 / Gehan 1965 as listed in docs/validation.md section 1: 21
     # subjects, 9 remissions ended
     time, event = _arm(0)
     assert time.size == 21 and event.sum() == 9
 
 
 def test_six_mp_table(six_mp):
-    # distinct observed times of the 6-MP arm (events and censorings, REFERENCE_CHECKS 1)
+    # distinct observed times of the 6-MP arm (events and censorings, docs/validation.md 1)
     np.testing.assert_array_equal(
         six_mp.times, [6, 7, 9, 10, 11, 13, 16, 17, 19, 20, 22, 23, 25, 32, 34, 35]
     )
     rows = np.searchsorted(six_mp.times, EVENT_WEEKS)
-    # REFERENCE LIBRARY: lifelines event_table, statsmodels summary (REFERENCE_CHECKS 1.1):
+    # REFERENCE LIBRARY: lifelines event_table, statsmodels summary (docs/validation.md 1.1):
     # a subject censored at an event time (6+) is still at risk at that time
     np.testing.assert_array_equal(six_mp.at_risk[rows], [21, 17, 15, 12, 11, 7, 6])
     np.testing.assert_array_equal(six_mp.events[rows], [3, 1, 1, 1, 1, 1, 1])
@@ -66,7 +66,7 @@ def test_six_mp_table(six_mp):
 def test_six_mp_survival(six_mp):
     # PUBLISHED (from memory; verified): Klein & Moeschberger, Survival Analysis, 2nd ed.,
     # Example 4.1 / Table 4.1A (0.857, 0.807, 0.753, 0.690, 0.627, 0.538, 0.448); values to 6
-    # decimals from lifelines / statsmodels / sksurv, identical (REFERENCE_CHECKS 1.1)
+    # decimals from lifelines / statsmodels / sksurv, identical (docs/validation.md 1.1)
     expected = [0.857143, 0.806723, 0.752941, 0.690196, 0.627451, 0.537815, 0.448179]
     np.testing.assert_allclose(six_mp.at(EVENT_WEEKS), expected, rtol=0, atol=5e-7)
     # closed form: product of (1 - d/n) -> 18/21 * 16/17 * 14/15 * 11/12 * 10/11 * 6/7 * 5/6
@@ -79,7 +79,7 @@ def test_six_mp_survival(six_mp):
 
 def test_six_mp_greenwood(six_mp):
     # PUBLISHED (from memory; verified): Klein & Moeschberger Table 4.1A (0.0764, 0.0869, ...);
-    # 6 decimals from statsmodels SurvfuncRight surv_prob_se (REFERENCE_CHECKS 1.1)
+    # 6 decimals from statsmodels SurvfuncRight surv_prob_se (docs/validation.md 1.1)
     expected = [0.076360, 0.086935, 0.096350, 0.106815, 0.114054, 0.128234, 0.134591]
     rows = np.searchsorted(six_mp.times, EVENT_WEEKS)
     np.testing.assert_allclose(six_mp.se[rows], expected, rtol=1e-5, atol=5e-7)
@@ -87,7 +87,7 @@ def test_six_mp_greenwood(six_mp):
 
 def test_six_mp_loglog_limits(six_mp):
     # REFERENCE LIBRARY: lifelines confidence_interval_, sksurv conf_type="log-log", by hand
-    # (REFERENCE_CHECKS 1.1)
+    # (docs/validation.md 1.1)
     lower = [0.6197, 0.5631, 0.5032, 0.4316, 0.3675, 0.2678, 0.1881]
     upper = [0.9516, 0.9228, 0.8894, 0.8491, 0.8049, 0.7468, 0.6801]
     rows = np.searchsorted(six_mp.times, EVENT_WEEKS)
@@ -109,7 +109,7 @@ def test_limits_match_lifelines(level):
 
 
 def test_step_conventions(six_mp):
-    # right-continuous step read (REFERENCE_CHECKS 1.1): 1 before the first time, the drop at
+    # right-continuous step read (docs/validation.md 1.1): 1 before the first time, the drop at
     # a time included, held between times, undefined (NaN) past the last observed time (35)
     values = six_mp.at([0.0, 5.999, 6.0, 6.5, 35.0, 35.001, 100.0])
     np.testing.assert_allclose(values[:5], [1.0, 1.0, 0.857143, 0.857143, 0.448179], atol=5e-7)
@@ -117,7 +117,7 @@ def test_step_conventions(six_mp):
 
 
 def test_placebo_arm():
-    # REFERENCE LIBRARY: statsmodels SurvfuncRight (REFERENCE_CHECKS 1.1, placebo); with no
+    # REFERENCE LIBRARY: statsmodels SurvfuncRight (docs/validation.md 1.1, placebo); with no
     # censoring S(t) is the fraction still in remission and Greenwood's SE the binomial SE
     time, event = _arm(1)
     km = kaplan_meier(time, event)
@@ -132,14 +132,14 @@ def test_placebo_arm():
     # closed form: binomial SE sqrt(S (1 - S) / 21) at every time
     s = km.survival[rows]
     np.testing.assert_allclose(km.se[rows], np.sqrt(s * (1 - s) / 21), rtol=1e-10)
-    # all 21 remissions end by week 23, so S(23) = 0 (REFERENCE_CHECKS 1.1; SE undefined there)
+    # all 21 remissions end by week 23, so S(23) = 0 (docs/validation.md 1.1; SE undefined there)
     assert km.at(23.0)[0] == 0.0
     assert km.lower[-1] == 0.0 and km.upper[-1] == 0.0
     assert not np.isfinite(km.se[-1]) or km.se[-1] == 0.0
 
 
 def test_lung_fixed_times():
-    # REFERENCE LIBRARY: statsmodels SurvfuncRight (REFERENCE_CHECKS 1.3): S(180) = 0.721671
+    # REFERENCE LIBRARY: statsmodels SurvfuncRight (docs/validation.md 1.3): S(180) = 0.721671
     # (SE 0.029812); S(365) = 0.409242 (SE 0.035824); S(730) = 0.115693 (SE 0.028298).
     # lifelines 0.30.3 ships status as 0/1 (165 deaths of 228), checked here.
     frame = load_lung()
@@ -154,7 +154,7 @@ def test_lung_fixed_times():
 
 
 def test_rossi_closed_form():
-    # REFERENCE LIBRARY: lifelines; closed form (REFERENCE_CHECKS 1.3): no censoring before
+    # REFERENCE LIBRARY: lifelines; closed form (docs/validation.md 1.3): no censoring before
     # week 52, so S(52) = 1 - 114/432 and S(26) = 0.875
     frame = load_rossi()
     km = kaplan_meier(frame["week"].to_numpy(dtype=float), frame["arrest"].to_numpy(dtype=int))

@@ -22,7 +22,7 @@ THRESHOLDS = {
     # relative change of O/E when a program's own recipients leave the reference
     "influence_relative_change": 0.05,
     "fdr_q_value": 0.05,
-    # cross-library agreement (REFERENCE_CHECKS.md tolerances for Cox fits)
+    # cross-library agreement (docs/validation.md tolerances for Cox fits)
     "crosscheck_coef": 1e-4,
     "crosscheck_se": 1e-4,
     "crosscheck_loglik": 1e-6,
