@@ -16,6 +16,7 @@ import pandas as pd
 
 from casemix.data.cohort import apply_window
 from casemix.data.records import Records, count_by_kind
+from casemix.errors import plural
 
 __all__ = ["EXCLUDED_SHARE_WARNING", "CheckResult", "check_extract", "reason_warnings"]
 
@@ -87,7 +88,8 @@ def reason_warnings(exclusions: pd.DataFrame, n_read: int,
     share = len(exclusions) / n_read
     if share > threshold:
         out.append(
-            f"{len(exclusions)} of {n_read} records ({share:.1%}) are excluded, more than "
+            f"{len(exclusions)} of {plural(n_read, 'record')} ({share:.1%}) are excluded, "
+            f"more than "
             f"{threshold:.0%}; check the cut-off, the window and the spec before using the "
             "results."
         )
@@ -95,7 +97,8 @@ def reason_warnings(exclusions: pd.DataFrame, n_read: int,
     for kind, n in kinds.items():
         if n / n_read > threshold:
             out.append(
-                f"{n} of {n_read} records ({n / n_read:.1%}) are excluded as \"{kind}\", more "
+                f"{n} of {plural(n_read, 'record')} ({n / n_read:.1%}) are excluded as "
+                f"\"{kind}\", more "
                 f"than {threshold:.0%} for one reason."
             )
     return out
@@ -176,7 +179,8 @@ def _out_of_range(model, frame: pd.DataFrame) -> list[str]:
         if n:
             term = terms[name]
             out.append(
-                f"covariate {name} (column '{term.column}'): {n} recipients lie outside the "
+                f"covariate {name} (column '{term.column}'): "
+                f"{plural(n, 'recipient', ('lies', 'lie'))} outside the "
                 f"reference range {term.minimum:g} to {term.maximum:g}; their expected events "
                 "are extrapolated."
             )

@@ -40,7 +40,7 @@ import pandas as pd
 
 from casemix.data.records import clean_text, format_rows
 from casemix.data.spec import SPLINE_KNOT_QUANTILES, Covariate, Spec, closest
-from casemix.errors import InputError, ModelFileError, SpecError
+from casemix.errors import InputError, ModelFileError, SpecError, plural
 
 __all__ = ["FORMAT_VERSION", "MISSING_LEVEL", "Design", "Term", "natural_spline_basis"]
 
@@ -377,7 +377,8 @@ def _all_problems(problems: list[str]) -> str:
     if len(problems) == 1:
         return problems[0]
     listed = " ".join(f"({i}) {text}" for i, text in enumerate(problems, start=1))
-    return f"{len(problems)} covariates cannot be encoded with the reference model: {listed}"
+    return (f"{plural(len(problems), 'covariate')} cannot be encoded with the reference "
+            f"model: {listed}")
 
 
 def _column(frame: pd.DataFrame, column: str, name: str) -> pd.Series:

@@ -377,7 +377,7 @@ def _check_line_breaks(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
         f"columns that cannot have them; the first, data row {first + 1}, starts on line "
         f"{line} and its column '{column}' runs over {spans} lines: a double quote (\") in or "
         f"near line {line} opens a field that swallows the following lines "
-        f"({len(raw)} records parsed from {len(raw) + int(lines_in.sum())} data lines). "
+        f"({plural(len(raw), 'record')} parsed from {len(raw) + int(lines_in.sum())} data lines). "
         "Remove the stray quote, or quote the field on both sides."
     )
 
@@ -415,7 +415,8 @@ def _program_codes(codes: pd.Series, spec: Spec, path: Path) -> pd.Series:
         groups = clash.groupby("key", sort=True)["code"].apply(sorted)
         shown = "; ".join(" and ".join(f"'{c}'" for c in g) for g in groups.iloc[:_SHOW])
         warnings.warn(DataWarning(
-            f"records file '{path}': {plural(len(groups), 'program code')} differ from another "
+            f"records file '{path}': "
+            f"{plural(len(groups), 'program code', ('differs', 'differ'))} from another "
             f"code only in letter case or spaces ({shown}); they are counted as different "
             "programs. If they are the same program, set normalise_programs = true in the "
             "[records] table of the spec (codes upper-cased, spaces removed)."

@@ -20,7 +20,7 @@ from casemix._io import replace_folder, sha256_file, write_csv, write_json
 from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, count_by_kind, read_records
-from casemix.errors import DataWarning, InputError
+from casemix.errors import DataWarning, InputError, plural
 from casemix.evaluation.expected import expected_events
 from casemix.evaluation.explain import casemix_contributions
 from casemix.evaluation.programs import program_table, survival_curves
@@ -248,7 +248,7 @@ def evaluate(
         raise InputError(
             f"no recipient of {records.source} is left in the evaluation cohort (cut-off "
             f"{_date_text(cutoff)}, window {_date_text(window[0]) or 'any'} to "
-            f"{_date_text(window[1]) or 'any'}); all {cohort.n_read} records are excluded. "
+            f"{_date_text(window[1]) or 'any'}); all {plural(cohort.n_read, 'record')} excluded. "
             "Check the dates and the exclusions."
         )
     for text in reason_warnings(cohort.exclusions, cohort.n_read):

@@ -24,7 +24,7 @@ from casemix.data.cohort import Cohort, build_cohort
 from casemix.data.design import Design
 from casemix.data.records import Records
 from casemix.data.spec import Spec, load_spec, spec_from_dict
-from casemix.errors import InputError, ModelFileError, ModelVersionWarning
+from casemix.errors import InputError, ModelFileError, ModelVersionWarning, plural
 from casemix.survival import BaselineHazard, ChiSquareTest, CoxFit, concordance, fit_cox
 
 FORMAT_VERSION = 2
@@ -139,7 +139,7 @@ class ReferenceModel:
         fit = self.fit
         return (
             f"<ReferenceModel {self.outcome} at {self.horizon_days} days: {len(fit.names)} "
-            f"terms, {fit.n} recipients, {fit.n_events} events, cut-off "
+            f"terms, {plural(fit.n, 'recipient')}, {plural(fit.n_events, 'event')}, cut-off "
             f"{self.cutoff.isoformat()}, fingerprint {self.fingerprint[:12]}>"
         )
 
@@ -421,7 +421,8 @@ def _check_horizon_support(time: np.ndarray, horizon_days: int, records: Records
     raise InputError(
         f"the reference population of '{records.source}' cannot support a horizon of "
         f"{horizon_days} days: its longest follow-up is {longest} and none of its "
-        f"{len(time)} recipients was followed to day {horizon_days}, so the baseline hazard "
+        f"{plural(len(time), 'recipient')} was followed to day {horizon_days}, so the "
+        f"baseline hazard "
         "would stop short of the horizon. Choose a horizon the reference follow-up reaches, "
         "or a reference population with longer follow-up (a later cut-off)."
     )

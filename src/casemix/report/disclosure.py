@@ -32,6 +32,7 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 
+from casemix.errors import plural
 from casemix.report.folder import EvaluationFolder, read_csv_as_written
 from casemix.report.plots import at_risk_times
 from casemix.report.public import corrections_by_kind, exclusions_by_reason
@@ -342,11 +343,11 @@ def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
         row = programs.iloc[i]
         code = row["program"]
         out.loc[out.index[i], derived] = np.nan
-        why = ("fewer than {n} recipients" if row["recipients"] < n
-               else "1 to {m} events or recipients without the event")
+        why = (f"fewer than {plural(n, 'recipient')}" if row["recipients"] < n
+               else f"1 to {n - 1} events or recipients without the event")
         log.append((code, "observed events, O/E, hazard ratio, intervals, probabilities, "
                           "survival, E, distances to another verdict, case mix",
-                    why.format(n=n, m=n - 1) + ": each of these gives the counts back"))
+                    why + ": each of these gives the counts back"))
         candidates = hidden_candidates(out["observed"].iloc[i], out["recipients"].iloc[i], n)
         if not verdict_says_nothing(row["verdict"], candidates, row["expected"], prior,
                                     rules):

@@ -156,7 +156,7 @@ def _program(release: PublicRelease, position: int, row: pd.Series,
         _interval(row, "oe_ratio", "oe_lower", "oe_upper"),
         _interval(row, "hr_mean", "hr_lower", "hr_upper"))
     if row["protected"]:
-        why = (f"fewer than {n} recipients" if row["recipients"] == f"<{n}"
+        why = (f"fewer than {plural(n, 'recipient')}" if row["recipients"] == f"<{n}"
                else f"from 1 to {n - 1} events, or as few recipients without the event")
         text = (f"This program has {why}: every figure from which its counts could be worked "
                 "out is withheld, including its curves, its case mix and the distance to "

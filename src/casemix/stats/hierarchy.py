@@ -45,7 +45,7 @@ from typing import Any
 import numpy as np
 from scipy import special, stats
 
-from casemix.errors import InputError
+from casemix.errors import InputError, plural
 from casemix.stats.poisson import as_observed_expected
 from casemix.stats.shrinkage import Prior, empirical_bayes_prior, fixed_prior
 
@@ -412,7 +412,8 @@ def hierarchical_prior(
            else "mean fixed at 1 (the reference)")
     lo90, hi90 = summary["posterior_spread_90"]
     note = (
-        f"Hierarchical prior from {o.size} programs: the spread of hazard ratios is integrated "
+        f"Hierarchical prior from {plural(o.size, 'program')}: the spread of hazard "
+        f"ratios is integrated "
         f"over the hyperprior {hyper.first.text()}, {how}. Its posterior median is "
         f"{summary['posterior_spread_median']:.3g} (90% {lo90:.3g} to {hi90:.3g}); each "
         "program's posterior is a mixture of gammas that carries this uncertainty."
