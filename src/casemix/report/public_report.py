@@ -81,11 +81,17 @@ def _verdict(verdict: str, palette: dict[str, str]) -> object:
 def _glance(release: PublicRelease) -> Section:
     programs, palette = release.programs, verdict_colours()
     rows = [r for _, r in programs.iterrows()]
-    frame = pd.DataFrame({
+    # The links and verdict chips go beside the frame (html=), never in it, so that no pandas
+    # dtype can turn them into text.
+    html = {
         "program": [Markup('<a href="#{}">{}</a>').format(program_anchor(i, r["program"]),
                                                           r["program"])
                     for i, r in enumerate(rows)],
         "verdict": [_verdict(r["verdict"], palette) for r in rows],
+    }
+    frame = pd.DataFrame({
+        "program": [r["program"] for r in rows],
+        "verdict": [r["verdict"] for r in rows],
         "recipients": [r["recipients"] for r in rows],
         "observed": [r["observed"] for r in rows],
         "expected": [_num(r["expected"], 1, r["protected"]) for r in rows],
@@ -98,7 +104,8 @@ def _glance(release: PublicRelease) -> Section:
         "expected_survival": [_num(r["expected_survival"], 3, r["protected"]) for r in rows],
     }, dtype=object)
     headers = glance_headers(release.run)
-    table = table_html(frame, headers=headers, wide=True,
+    headers.pop("reach")  # what a program could show follows from its E: not published
+    table = table_html(frame, headers=headers, wide=True, html=html,
                        numeric=[c for c in headers if c not in ("program", "verdict")])
     counts = programs["verdict"].value_counts()
     parts = [f"{counts[v]} {VERDICT_WORDS.get(v, v)}" for v in (*VERDICT_WORDS, WITHHELD)
