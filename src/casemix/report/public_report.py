@@ -112,9 +112,10 @@ def _glance(release: PublicRelease) -> Section:
              if v in counts]
     intro = Markup(
         "<p>{}: {}. The hazard ratio is the observed-to-expected ratio after shrinkage "
-        "towards the network. “{}” marks a figure left out under the disclosure rule "
+        "towards {}. “{}” marks a figure left out under the disclosure rule "
         "(see the last part).</p>"
-    ).format(plural(len(programs), "program"), ", ".join(parts), WITHHELD)
+    ).format(plural(len(programs), "program"), ", ".join(parts),
+             release.run["prior"].get("centre", "the prior's mean"), WITHHELD)
     return Section("Programs at a glance", str(intro + Markup(table)), anchor="programs")
 
 

@@ -135,9 +135,10 @@ def _prior_text(prior: dict) -> str:
     mean = prior.get("mean", shape / rate if shape and rate else None)
     method = str(prior.get("method", "")).replace("_", " ")
     if prior.get("method") == "hierarchical":
-        count = len(prior.get("components") or ()) or 1
-        return (f"hierarchical: a mixture of {count} gammas over the "
-                f"hyperposterior (mean {_num(mean, 3)}, sd {_num(prior.get('sd'), 3)})")
+        count = len(prior.get("components") or ())
+        form = (f"a mixture of {count} gammas over the hyperposterior" if count
+                else "integrated over the hyperposterior (components not published)")
+        return f"hierarchical: {form} (mean {_num(mean, 3)}, sd {_num(prior.get('sd'), 3)})"
     return f"gamma, shape {_num(shape, 3)}, rate {_num(rate, 3)} (mean {_num(mean, 3)}); {method}"
 
 
