@@ -126,14 +126,19 @@ def test_csv_reads_back_to_the_frame(network, tmp_path):
     assert "NaT" not in text and "nan" not in text.lower()  # missing values are empty fields
 
 
-def test_dates_are_built_without_a_float_cast_and_equal_pandas_own_cast():
-    # Reference: pandas.to_datetime(float days, unit="D"), the cast the demo used before; the
-    # demo's dates are whole days with NaN for "no date" (2016-2025 in the scenario).
+def test_dates_are_built_without_a_float_cast_and_equal_pandas_own_dates():
+    # Reference: pandas' own Timestamp + Timedelta arithmetic, one date at a time, in the unit
+    # pandas gives the dates it parses. Not pandas.to_datetime(float days, unit="D"): that cast
+    # itself can raise a FloatingPointError from uninitialised scratch memory, the very
+    # failure the demo avoids. The demo's dates are whole days with NaN for "no date".
     rng = np.random.default_rng(3)
     days = rng.integers(16_000, 20_500, size=2_000).astype(float)
     days[rng.random(days.size) < 0.3] = np.nan
     ours = pd.DatetimeIndex(demo._dates(days))
-    theirs = pd.to_datetime(days, unit="D")
+    epoch = pd.Timestamp("1970-01-01")
+    theirs = pd.DatetimeIndex(
+        [pd.NaT if np.isnan(d) else epoch + pd.Timedelta(days=int(d)) for d in days]
+    ).as_unit(pd.to_datetime(["2020-01-01"]).unit)
     pd.testing.assert_index_equal(ours, theirs)
     assert ours.isna().sum() == np.isnan(days).sum() > 0
     with np.errstate(all="raise"):  # no floating-point step that could raise
