@@ -11,8 +11,8 @@ import warnings
 
 import pytest
 
-from casemix.audit import run_audit
-from casemix.audit.agreement import check_audit_folder, verdict_agreement
+from casemix.audit import Audit, run_audit
+from casemix.audit.agreement import check_audit, verdict_agreement
 from casemix.data.records import read_records
 from casemix.data.spec import load_spec
 from casemix.demo import COHORT_CUTOFF, REFERENCE_CUTOFF, REFERENCE_WINDOW, generate
@@ -75,9 +75,9 @@ def test_default_rules_differ_and_are_refused_beside_the_evaluation(linked, tmp_
     run = json.loads((linked["folder"] / "evaluation" / "run.json").read_text())
     linked["by_default"].save(tmp_path / "default")
     with pytest.raises(InputError, match="did not make its verdicts with this evaluation's"):
-        check_audit_folder(tmp_path / "default", run)
+        check_audit(Audit.load(tmp_path / "default"), run)
     linked["by_folder"].save(tmp_path / "linked")
-    check_audit_folder(tmp_path / "linked", run)  # the linked audit is accepted
+    check_audit(Audit.load(tmp_path / "linked"), run)  # the linked audit is accepted
 
 
 def test_evaluation_of_another_model_or_cohort_is_refused(linked, tmp_path):

@@ -10,7 +10,7 @@ any difference, so that one page never shows two verdicts for one program.
 from __future__ import annotations
 
 import json
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
@@ -19,7 +19,7 @@ from casemix.errors import InputError
 from casemix.stats.shrinkage import Prior
 from casemix.stats.verdict import Rules, rules_from_dict
 
-__all__ = ["EvaluationSettings", "check_audit_folder", "evaluation_settings", "verdict_agreement"]
+__all__ = ["EvaluationSettings", "check_audit", "evaluation_settings", "verdict_agreement"]
 
 
 @dataclass(frozen=True)
@@ -80,15 +80,17 @@ def evaluation_settings(folder: str | Path, model_fingerprint: str) -> Evaluatio
     try:
         fingerprint = run["model"]["fingerprint"]
         rules = rules_from_dict(run["rules"], source=str(folder / "run.json"))
-        stored = run["prior"]
-        values = {f.name: stored[f.name] for f in fields(Prior) if f.name in stored}
-        values["components"] = tuple(tuple(c) for c in values.get("components", ()))
-        prior = Prior(**values)
+        stored_prior = run["prior"]
         window = tuple(run.get("window") or (None, None))
     except (KeyError, TypeError) as err:
         raise InputError(
             f"{folder / 'run.json'}: lacks {err}; run the evaluation again with this version"
         ) from err
+    try:
+        prior = Prior.from_dict(stored_prior)
+    except InputError as err:
+        raise InputError(f"{folder / 'run.json'}: {err} Run the evaluation again with this "
+                         "version.") from err
     if fingerprint != model_fingerprint:
         raise InputError(
             f"the evaluation in {folder} was made with another reference model (fingerprint "
@@ -140,13 +142,13 @@ def verdict_agreement(programs: pd.DataFrame, folder: str | Path) -> int:
     return len(ours)
 
 
-def check_audit_folder(audit_folder: str | Path, run: dict) -> None:
+def check_audit(audit, run: dict) -> None:
     """Refuse to show an audit beside an evaluation it did not evaluate like.
 
     Parameters
     ----------
-    audit_folder : str or Path
-        A folder written by ``Audit.save`` (its ``audit.json``).
+    audit : Audit
+        The audit (:func:`casemix.audit.run_audit`, or read back with ``Audit.load``).
     run : dict
         The evaluation's ``run.json``.
 
@@ -155,22 +157,20 @@ def check_audit_folder(audit_folder: str | Path, run: dict) -> None:
     InputError
         The audit was made with another model, without a cohort, or with other rules or prior.
     """
-    path = Path(audit_folder) / "audit.json"
-    try:
-        facts = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as err:
-        raise InputError(f"{path}: cannot be read ({err}); run the audit again") from err
-    if facts.get("model_fingerprint") != run["model"]["fingerprint"]:
+    theirs = audit.facts.get("model_fingerprint")
+    ours = run["model"].get("fingerprint")
+    if ours is None or theirs != ours:
         raise InputError(
-            f"the audit in {audit_folder} checked another reference model than the "
-            "evaluation's; audit with the evaluation's model (casemix audit --evaluation)"
+            f"the audit is of another reference model (fingerprint {str(theirs)[:12]}..., the "
+            f"evaluation's is {str(ours)[:12]}...); audit the model the evaluation used "
+            "(casemix audit --evaluation), or leave the audit out."
         )
-    link = facts.get("evaluation")
-    same = link is not None and link["rules"] == run["rules"] and all(
-        link["prior"][k] == run["prior"][k] for k in ("shape", "rate")
+    link = audit.facts.get("evaluation")
+    same = isinstance(link, dict) and link.get("rules") == run["rules"] and all(
+        link.get("prior", {}).get(k) == run["prior"][k] for k in ("shape", "rate")
     )
     if not same:
         raise InputError(
-            f"the audit in {audit_folder} did not make its verdicts with this evaluation's "
-            "rules and prior; run it again with --evaluation on this evaluation folder"
+            "the audit did not make its verdicts with this evaluation's rules and prior; run "
+            "it again with --evaluation on this evaluation folder"
         )

@@ -9,6 +9,7 @@ multiplicity).
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from functools import partial
@@ -56,9 +57,11 @@ __all__ = ["HORIZONS", "Audit", "run_audit"]
 HORIZONS = (30, 90, 365, 1095)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Audit:
     """The audit's tables and findings (a snapshot; see :func:`run_audit`).
+
+    :meth:`save` writes it to a folder and :meth:`load` reads it back.
 
     Attributes
     ----------
@@ -71,8 +74,9 @@ class Audit:
         ``bootstrap_coefficients``, ``bootstrap_draws``, ``influence``, ``fdr``. Risk
         groups (``calibration_risk``) are on one scale for both populations: the log
         relative risk against the reference population's average recipient.
-    schoenfeld : DataFrame
-        Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot.
+    schoenfeld : DataFrame or None
+        Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot;
+        not saved, so None for an audit read back by :meth:`load`.
     findings : tuple of str
         Plain-words findings, most important checks first.
     facts : dict
@@ -80,7 +84,7 @@ class Audit:
     """
 
     tables: dict[str, pd.DataFrame]
-    schoenfeld: pd.DataFrame
+    schoenfeld: pd.DataFrame | None
     findings: tuple[str, ...]
     facts: dict[str, Any] = field(default_factory=dict)
 
@@ -97,6 +101,53 @@ class Audit:
         write_json(folder / "audit.json", self.facts)
         atomic_write_text(folder / "audit.html", audit_html(self))
         return folder
+
+    @classmethod
+    def load(cls, folder: str | Path) -> Audit:
+        """Read an audit folder written by :meth:`save`: every CSV, the findings and facts.
+
+        Raises
+        ------
+        InputError
+            Not a folder, ``findings.json`` or ``audit.json`` missing (an empty list of
+            findings would then read like a clean audit) or not valid, or a CSV that cannot
+            be read; the message names the file.
+        """
+        folder = Path(folder)
+        if not folder.is_dir():
+            raise InputError(f"{folder}: audit folder not found; pass the folder `casemix "
+                             "audit` wrote, or leave it out.")
+        absent = [n for n in ("findings.json", "audit.json") if not (folder / n).is_file()]
+        if absent:
+            raise InputError(
+                f"{folder}: not a complete audit folder ({' and '.join(absent)} missing), so "
+                "an empty list of findings would read like a clean audit. Pass the folder "
+                "`casemix audit ... --out DIR` wrote, or run the audit again."
+            )
+        findings, facts = (_json(folder / name) for name in ("findings.json", "audit.json"))
+        if not isinstance(findings, list):
+            raise InputError(f"{folder / 'findings.json'}: must hold a list of findings; run "
+                             "the audit again.")
+        if not isinstance(facts, dict):
+            raise InputError(f"{folder / 'audit.json'}: must hold an object of facts; run the "
+                             "audit again.")
+        tables = {}
+        for path in sorted(folder.glob("*.csv")):
+            try:
+                tables[path.stem] = pd.read_csv(path)
+            except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as err:
+                raise InputError(f"{path}: cannot be read as CSV ({err}); run the audit "
+                                 "again.") from err
+        texts = tuple(i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
+                      for i in findings)
+        return cls(tables=tables, schoenfeld=None, findings=texts, facts=facts)
+
+
+def _json(path: Path) -> Any:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"{path}: not valid JSON ({err}); run the audit again.") from err
 
 
 def _load(model, reference_records):
