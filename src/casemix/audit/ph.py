@@ -56,7 +56,7 @@ __all__ = [
 TRANSFORMS = ("identity", "log", "rank", "km", "km_left")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Events:
     """The rows with an event, in ascending time order (ties by row), and their residuals."""
 

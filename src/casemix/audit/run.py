@@ -24,8 +24,8 @@ from casemix.audit._optional import available
 from casemix.audit.agreement import evaluation_settings, verdict_agreement
 from casemix.audit.bootstrap import (
     ProgramArrays,
-    _check_replicates,
     bootstrap_expected,
+    check_replicates,
     delta_expected,
 )
 from casemix.audit.calibration import (
@@ -40,11 +40,10 @@ from casemix.audit.influence import leave_one_program_out
 from casemix.audit.ph import TRANSFORMS, ph_test, ph_test_groups, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
 from casemix.audit.wald import wald_groups
-from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, read_records
 from casemix.errors import InputError
 from casemix.evaluation.evaluate import evaluate
-from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.model.reference import ReferenceModel, reference_data
 from casemix.parallel import DEFAULT_WORKERS, replicate_map
 from casemix.report.audit_page import audit_html
 from casemix.stats.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
@@ -224,17 +223,11 @@ def _evaluation(cohort_records, model, cutoff, window, settings):
         records, model, settings["rules"], settings["prior"], free_mean=settings["free_mean"],
         cutoff=cutoff, window=window,
     )  # fmt: skip
-    cut = cutoff if cutoff is not None else records.cutoff
-    _, cut, win = resolve_analysis(model.spec, model.horizon_days, cut, window)
-    cohort = build_cohort(records, model.outcome, model.horizon_days, cut, win)
-    X, strata = model.matrices(cohort)
+    frame = evaluation.expected.cohort.frame  # the evaluation's own cohort and design matrix
     arrays = ProgramArrays.build(
-        cohort.frame["time"].to_numpy(float), X, strata,
-        cohort.frame[model.spec.columns.program].astype(str),
+        frame["time"].to_numpy(float), evaluation.expected.X, evaluation.expected.strata,
+        frame[model.spec.columns.program].astype(str),
     )  # fmt: skip
-    ids = cohort.frame[model.spec.columns.recipient].astype(str).to_numpy()
-    if not np.array_equal(ids, evaluation.recipients["recipient"].astype(str).to_numpy()):
-        raise InputError("the cohort rows do not line up with the evaluation; run it again")
     return evaluation, arrays
 
 
@@ -422,7 +415,7 @@ def run_audit(
             "(--cohort)"
         )
     if cohort_records is not None:
-        _check_replicates(bootstrap)  # before any work, not after the model checks
+        check_replicates(bootstrap)  # before any work, not after the model checks
     model, data = _load(model, reference_records)
     reference_programs = ProgramArrays.build(
         data.time, data.X, data.strata,

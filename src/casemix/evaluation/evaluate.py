@@ -23,7 +23,7 @@ from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, count_by_kind, read_records
 from casemix.errors import DataWarning, InputError, plural
-from casemix.evaluation.expected import expected_events
+from casemix.evaluation.expected import ExpectedEvents, expected_events
 from casemix.evaluation.explain import casemix_contributions
 from casemix.evaluation.folder import PROGRAM_COLUMNS, TABLES, read_run, read_tables
 from casemix.evaluation.programs import program_table, survival_curves
@@ -102,6 +102,10 @@ class Evaluation:
         ``row``, ``recipient``, ``program``, ``kind``: one line per correction of a recipient
         kept in the cohort (see casemix.data.records); None when loaded from a folder written
         before corrections were saved.
+    expected : ExpectedEvents or None
+        What :func:`evaluate` computed the tables from: the cohort, its design matrix and
+        strata, rows as in ``recipients`` (so that later stages such as the audit need not
+        build them again). Not saved: None for an evaluation read back by :meth:`load`.
     """
 
     programs: pd.DataFrame
@@ -116,6 +120,7 @@ class Evaluation:
     rules: Rules
     run: dict
     corrections: pd.DataFrame | None = None
+    expected: ExpectedEvents | None = None
 
     def save(self, folder: str | Path) -> Path:
         """Write the evaluation files into ``folder`` as a whole (see casemix._io.replace_folder).
@@ -315,6 +320,7 @@ def evaluate(
         rules=rules,
         run=run,
         corrections=cohort.corrections,
+        expected=expected,
     )
 
 

@@ -75,7 +75,7 @@ MIN_SPREAD = 3
 this much (max - min), so that no guess is sure to be within one of it."""
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class PublicRelease:
     """The public tables of one evaluation, and the list of what they withhold.
 

@@ -30,7 +30,7 @@ from casemix.survival._validate import as_weights
 __all__ = ["CumulativeIncidence", "cumulative_incidence"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class CumulativeIncidence:
     """Cumulative incidence of the event of interest, right-continuous, at each distinct time.
 
