@@ -250,7 +250,8 @@ def _settings(model, cohort_records, rules, prior, free_mean, folder) -> dict[st
             )
     window = None if found.window == (None, None) else found.window
     return {"rules": found.rules, "prior": found.prior, "free_mean": False, "folder": folder,
-            "cutoff": found.cutoff, "window": window}  # fmt: skip
+            "cutoff": found.cutoff, "window": window,
+            "evaluation": found.evaluation}  # fmt: skip
 
 
 def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
@@ -449,7 +450,7 @@ def run_audit(
             "rules": evaluation.rules.to_dict(),
             "prior": evaluation.prior.to_dict(),
             "programs_agreeing": None if link is None else verdict_agreement(
-                evaluation.programs, link
+                evaluation.programs, settings["evaluation"]
             ),
         }  # fmt: skip
         if map_fn is None:
