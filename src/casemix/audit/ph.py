@@ -40,7 +40,7 @@ from casemix.audit.wald import wald_groups
 from casemix.data.design import natural_spline_basis
 from casemix.errors import InputError, plural
 from casemix.survival import kaplan_meier
-from casemix.survival._validate import as_matrix, as_time_event, as_weights
+from casemix.survival.validate import as_matrix, as_time_event, as_weights
 
 __all__ = [
     "TRANSFORMS",

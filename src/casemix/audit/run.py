@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 
 from casemix._io import atomic_write_text, sha256_file, write_csv, write_json
-from casemix.audit._optional import available
+from casemix._optional import available
 from casemix.audit.agreement import evaluation_settings, verdict_agreement
 from casemix.audit.bootstrap import (
     ProgramArrays,

@@ -25,7 +25,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from casemix.errors import InputError
-from casemix.survival._validate import as_weights
+from casemix.survival.validate import as_weights
 
 __all__ = ["CumulativeIncidence", "cumulative_incidence"]
 

@@ -29,7 +29,7 @@ from scipy import stats
 
 from casemix.errors import ConvergenceError, ConvergenceWarning, InputError, plural
 from casemix.survival._gram import weighted_gram, weighted_group_sums
-from casemix.survival._validate import as_matrix, as_time_event, as_weights, check_columns
+from casemix.survival.validate import as_matrix, as_time_event, as_weights, check_columns
 
 __all__ = [
     "DIVERGED_COEF",

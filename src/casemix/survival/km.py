@@ -8,7 +8,7 @@ import numpy as np
 from scipy import stats
 
 from casemix.errors import InputError
-from casemix.survival._validate import as_time_event, as_weights
+from casemix.survival.validate import as_time_event, as_weights
 
 __all__ = [
     "KaplanMeier",
