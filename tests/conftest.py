@@ -1,8 +1,14 @@
-"""Fixtures shared across the test folders: the rossi data shipped in lifelines.datasets."""
+"""Fixtures shared across the test folders: the rossi data shipped in lifelines.datasets, and
+the evaluation folders of tests/evaluation_folders.py."""
 
 from __future__ import annotations
 
 import pytest
+from evaluation_folders import (  # noqa: F401  (fixtures, registered by being imported here)
+    corrections_folder,
+    evaluation_folder,
+    folder_factory,
+)
 from oracles import lifelines
 
 from casemix.survival import fit_cox

@@ -29,7 +29,7 @@ def test_each_worker_process_gets_one_blas_thread(monkeypatch):
 def test_errors(monkeypatch):
     with pytest.raises(InputError, match="workers must be at least 1, got 0"):
         list(replicate_map(abs, [1], workers=0))
-    monkeypatch.setattr("casemix.audit._optional.available", lambda module: False)
+    monkeypatch.setattr("casemix._optional.available", lambda module: False)
     monkeypatch.setenv(SCHEDULER_ENV, "tcp://127.0.0.1:1")
     with pytest.raises(CasemixError, match="needs the 'distributed' package"):
         list(replicate_map(abs, [1]))

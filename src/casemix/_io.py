@@ -1,4 +1,4 @@
-"""Atomic file writes and file fingerprints shared by every stage that writes output."""
+"""Atomic file writes, file fingerprints and CSV reading shared by the stages that use files."""
 
 from __future__ import annotations
 
@@ -7,11 +7,25 @@ import json
 import os
 import shutil
 import tempfile
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from pathlib import Path
 from typing import Any
 
 import pandas as pd
+
+__all__ = [
+    "atomic_write_bytes",
+    "atomic_write_text",
+    "read_csv_as_written",
+    "replace_folder",
+    "sha256_file",
+    "write_csv",
+    "write_json",
+]
+
+# The strings read_csv takes as missing by default (pandas documentation of `na_values`).
+_DEFAULT_NA = ("", "#N/A", "#N/A N/A", "#NA", "-1.#IND", "-1.#QNAN", "-NaN", "-nan", "1.#IND",
+               "1.#QNAN", "<NA>", "N/A", "NA", "NULL", "NaN", "None", "n/a", "nan", "null")
 
 
 def atomic_write_bytes(path: str | Path, data: bytes) -> Path:
@@ -51,11 +65,38 @@ def write_json(path: str | Path, obj: Any) -> Path:
     )
 
 
-def write_csv(path: str | Path, frame: pd.DataFrame) -> Path:
-    """Write a DataFrame as CSV without its index, atomically, with a fixed float format."""
+def write_csv(path: str | Path, frame: pd.DataFrame, *, exact: bool = False) -> Path:
+    """Write a DataFrame as CSV without its index, atomically.
+
+    Floats are written with 10 significant digits, or with ``exact`` as the shortest text
+    that reads back to the same float (so that a file read back gives the same numbers, and
+    what is computed from them the same results).
+    """
     return atomic_write_text(
-        path, frame.to_csv(index=False, lineterminator="\n", float_format="%.10g")
+        path, frame.to_csv(index=False, lineterminator="\n",
+                           float_format=None if exact else "%.10g")
     )
+
+
+def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.DataFrame:
+    """Read a CSV file, keeping ``text_columns`` exactly as written.
+
+    A program coded ``NA`` or an empty code stays that text; the other columns are read as
+    ``read_csv`` reads them by default. ``converters={column: str}`` is not enough: from
+    pandas 3 on the missing-value check also runs on converted values, so ``NA`` and ``""``
+    would become NaN there and a program would vanish from the report.
+
+    Parameters
+    ----------
+    path : str or Path
+        The CSV file.
+    text_columns : sequence of str
+        Columns read as text with no value taken as missing (absent ones are ignored).
+    """
+    header = pd.read_csv(path, nrows=0).columns
+    text = [c for c in header if c in text_columns]
+    return pd.read_csv(path, dtype=dict.fromkeys(text, str), keep_default_na=False,
+                       na_values={c: list(_DEFAULT_NA) for c in header if c not in text})
 
 
 def sha256_file(path: str | Path) -> str:

@@ -21,6 +21,11 @@ from rich.console import Console
 import casemix
 from casemix.errors import CasemixError, CasemixWarning, plural
 
+__all__ = [
+    "app",
+    "main",
+]
+
 if TYPE_CHECKING:  # pandas, scipy, statsmodels and matplotlib load inside the commands only
     import pandas as pd
 

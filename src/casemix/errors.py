@@ -6,6 +6,21 @@ it. User input is never checked with ``assert``.
 
 from __future__ import annotations
 
+__all__ = [
+    "CasemixError",
+    "CasemixWarning",
+    "ConvergenceError",
+    "ConvergenceWarning",
+    "DataWarning",
+    "InputError",
+    "ModelFileError",
+    "ModelVersionWarning",
+    "PriorWarning",
+    "RulesError",
+    "SpecError",
+    "plural",
+]
+
 
 class CasemixError(Exception):
     """Base class of every casemix error."""

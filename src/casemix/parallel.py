@@ -76,7 +76,7 @@ def replicate_map(
                 joblib.delayed(func)(item) for item in items
             )
         return
-    from casemix.audit._optional import require
+    from casemix._optional import require
 
     distributed = require("distributed", f"running replicates on the Dask scheduler {scheduler}")
     # func travels as an argument, scattered once to every worker (the backend would hash it

@@ -7,17 +7,18 @@ evaluation's own (casemix.evaluate), so the check is of agreement, not of a numb
 from __future__ import annotations
 
 import json
+import shutil
 import warnings
 
 import pytest
 
-from casemix.audit import run_audit
-from casemix.audit.agreement import check_audit_folder, verdict_agreement
+from casemix.audit import Audit, run_audit
+from casemix.audit.agreement import check_audit, verdict_agreement
 from casemix.data.records import read_records
 from casemix.data.spec import load_spec
 from casemix.demo import COHORT_CUTOFF, REFERENCE_CUTOFF, REFERENCE_WINDOW, generate
 from casemix.errors import InputError
-from casemix.evaluation.evaluate import evaluate
+from casemix.evaluation.evaluate import Evaluation, evaluate
 from casemix.model.reference import fit_reference
 
 # a user's own rules: a smaller probability and a clinical margin for excess (on this slice
@@ -71,20 +72,20 @@ def test_default_rules_differ_and_are_refused_beside_the_evaluation(linked, tmp_
     theirs = linked["evaluation"].programs.set_index("program")["verdict"].sort_index()
     assert not _verdicts(linked["by_default"]).equals(theirs)
     with pytest.raises(InputError, match="verdicts differ from the evaluation"):
-        verdict_agreement(linked["by_default"].tables["fdr"], linked["folder"] / "evaluation")
+        verdict_agreement(linked["by_default"].tables["fdr"],
+                          Evaluation.load(linked["folder"] / "evaluation"))
     run = json.loads((linked["folder"] / "evaluation" / "run.json").read_text())
     linked["by_default"].save(tmp_path / "default")
     with pytest.raises(InputError, match="did not make its verdicts with this evaluation's"):
-        check_audit_folder(tmp_path / "default", run)
+        check_audit(Audit.load(tmp_path / "default"), run)
     linked["by_folder"].save(tmp_path / "linked")
-    check_audit_folder(tmp_path / "linked", run)  # the linked audit is accepted
+    check_audit(Audit.load(tmp_path / "linked"), run)  # the linked audit is accepted
 
 
 def test_evaluation_of_another_model_or_cohort_is_refused(linked, tmp_path):
     folder = linked["folder"]
     run = json.loads((folder / "evaluation" / "run.json").read_text())
-    other = tmp_path / "other"
-    other.mkdir()
+    other = shutil.copytree(folder / "evaluation", tmp_path / "other")
     (other / "run.json").write_text(json.dumps({**run, "model": {"fingerprint": "0" * 64}}))
     with pytest.raises(InputError, match="made with another reference model"):
         run_audit(linked["reference"], linked["model"], linked["cohort"], evaluation=other,

@@ -32,6 +32,7 @@ from casemix import (
 )
 from casemix.errors import InputError, PriorWarning
 from casemix.evaluation.evaluate import PROGRAM_COLUMNS
+from casemix.evaluation.folder import TABLES
 
 # DESIGN.md, "programs.csv columns, in this order".
 DESIGN_COLUMNS = [
@@ -225,6 +226,23 @@ def test_save_writes_every_file_atomically(evaluation, tmp_path):
     before = {p.name: p.read_bytes() for p in out.iterdir()}
     evaluation.save(out)
     assert {p.name: p.read_bytes() for p in out.iterdir()} == before
+
+
+def test_load_gives_back_the_saved_evaluation(evaluation, by_race, model_a, tmp_path):
+    _, path = model_a
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", PriorWarning)  # three programs: a wide hyperposterior
+        mixture = evaluate(by_race, path, cutoff=rr.ROSSI_CUTOFF)  # hierarchical by default
+    assert mixture.prior.components  # a mixture prior, rebuilt from run.json's components
+    for saved in (evaluation, mixture):
+        back = Evaluation.load(saved.save(tmp_path / saved.prior.method))
+        assert back.prior == saved.prior and back.run == saved.run
+        assert back.rules.to_dict() == saved.rules.to_dict()
+        for table in TABLES:
+            ours, theirs = getattr(saved, table.attribute), getattr(back, table.attribute)
+            if table.attribute == "recipients":  # no stratum (None) is written as ""
+                ours = ours.assign(stratum=ours["stratum"].fillna(""))
+            pd.testing.assert_frame_equal(theirs, ours, check_dtype=False, obj=table.name)
 
 
 def test_a_failed_save_leaves_no_temporary_file(evaluation, tmp_path, monkeypatch):

@@ -4,13 +4,25 @@ from __future__ import annotations
 
 import json
 import re
+import warnings
+from pathlib import Path
 
 import pandas as pd
 import pytest
 
-from casemix.errors import InputError
+from casemix import demo
+from casemix.audit import Audit
+from casemix.errors import DataWarning, InputError
+from casemix.evaluation import Evaluation, evaluate
 from casemix.report import render_report, write_report
 from casemix.report.build import REPORT_CAUTIONS
+
+
+def render_folder(folder, *, audit_folder=None, **options):
+    """The report of a saved evaluation (and audit), as ``write_report`` renders it."""
+    audit = None if audit_folder is None else Audit.load(audit_folder)
+    return render_report(Evaluation.load(folder), audit=audit, **options)
+
 
 HOSTILE = "<script>alert(1)</script>"
 PROGRAMS = {"LV01": (150, 1.0), HOSTILE: (120, 1.6), "LV03": (9, 1.0), "LV04": (200, 0.6)}
@@ -18,7 +30,7 @@ PROGRAMS = {"LV01": (150, 1.0), HOSTILE: (120, 1.6), "LV03": (9, 1.0), "LV04": (
 
 @pytest.fixture(scope="module")
 def report(evaluation_folder):
-    return render_report(evaluation_folder)
+    return render_folder(evaluation_folder)
 
 
 @pytest.fixture(scope="module")
@@ -30,7 +42,7 @@ def hostile_folder(folder_factory, tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def hostile_report(hostile_folder):
-    return render_report(hostile_folder)
+    return render_folder(hostile_folder)
 
 
 @pytest.fixture(scope="module")
@@ -78,7 +90,7 @@ def test_report_escapes_a_hostile_program_name(hostile_report, strict_html):
 
 
 def test_small_counts_are_suppressed_and_said_so(hostile_folder, hostile_report, tmp_path):
-    hidden = render_report(hostile_folder, suppress_below=11)
+    hidden = render_folder(hostile_folder, suppress_below=11)
     programs = pd.read_csv(hostile_folder / "programs.csv")
     small = programs.loc[programs["program"] == "LV03"].iloc[0]
     cell = f'<td class="num">{int(small["recipients"])}</td>'  # 9 recipients
@@ -93,7 +105,8 @@ def test_small_counts_are_suppressed_and_said_so(hostile_folder, hostile_report,
     with pytest.raises(InputError, match=r"cannot replace the internal one"):
         write_report(hostile_folder, hostile_folder / "report.html", suppress_below=11)
     with pytest.raises(InputError, match=r"the audit is not part of a public release"):
-        render_report(hostile_folder, suppress_below=11, audit_folder=tmp_path)
+        render_report(Evaluation.load(hostile_folder), suppress_below=11,
+                      audit=Audit(tables={}, schoenfeld=None, findings=(), facts={}))
 
 
 def test_report_is_reproducible_and_written_atomically(evaluation_folder, report, tmp_path):
@@ -119,7 +132,7 @@ def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html
     facts = {"model_fingerprint": run["model"]["fingerprint"],
              "evaluation": {"rules": run["rules"], "prior": run["prior"]}}
     (audit / "audit.json").write_text(json.dumps(facts), encoding="utf-8")
-    html = render_report(small_folder, audit_folder=audit)
+    html = render_folder(small_folder, audit_folder=audit)
     parser = strict_html(html)
     assert parser.ids[-1] == "audit"
     assert "hazards for &lt;script&gt;" in html
@@ -130,7 +143,7 @@ def test_audit_folder_becomes_a_last_section(small_folder, tmp_path, strict_html
                                      "rules": {**run["rules"], "upper_margin": 1.5}}}
     (audit / "audit.json").write_text(json.dumps(other), encoding="utf-8")
     with pytest.raises(InputError, match="did not make its verdicts with this evaluation's"):
-        render_report(small_folder, audit_folder=audit)
+        render_folder(small_folder, audit_folder=audit)
 
 
 def test_an_empty_or_foreign_audit_folder_is_refused(small_folder, tmp_path):
@@ -138,16 +151,39 @@ def test_an_empty_or_foreign_audit_folder_is_refused(small_folder, tmp_path):
     audit.mkdir()
     with pytest.raises(InputError, match=r"not a complete audit folder \(findings.json and "
                        r"audit.json missing\), so an empty list of findings would read like"):
-        render_report(small_folder, audit_folder=audit)
+        render_folder(small_folder, audit_folder=audit)
     (audit / "findings.json").write_text("[]")
     (audit / "audit.json").write_text(json.dumps({"model_fingerprint": "ffff0000"}))
     with pytest.raises(InputError, match=r"the audit is of another reference model "
                        r"\(fingerprint ffff0000\.\.\., the evaluation's is ab12cd34"):
-        render_report(small_folder, audit_folder=audit)
+        render_folder(small_folder, audit_folder=audit)
 
 
 def test_bad_arguments(evaluation_folder, tmp_path):
     with pytest.raises(InputError, match=r"suppress_below must be a whole number of at least 2"):
-        render_report(evaluation_folder, suppress_below=1)
+        render_folder(evaluation_folder, suppress_below=1)
     with pytest.raises(InputError, match=r"audit folder not found"):
-        render_report(evaluation_folder, audit_folder=tmp_path / "none")
+        render_folder(evaluation_folder, audit_folder=tmp_path / "none")
+
+
+@pytest.fixture(scope="module")
+def demo_evaluation(tmp_path_factory):
+    """The demo network evaluated with the bundled model, in memory and saved."""
+    root = tmp_path_factory.mktemp("demo")
+    paths = demo.write_demo(root)
+    model = Path(__file__).resolve().parents[2] / "models" / "lorran_valley_graft_failure_365.json"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", DataWarning)  # the demo's planted record problems
+        evaluation = evaluate(paths["cohort"], model, paths["rules"], cutoff=demo.COHORT_CUTOFF,
+                              window=demo.COHORT_WINDOW)
+    return evaluation, evaluation.save(root / "results")
+
+
+@pytest.mark.parametrize("suppress_below", [None, 11])
+def test_a_saved_evaluation_renders_the_same_bytes_as_in_memory(demo_evaluation, suppress_below):
+    evaluation, folder = demo_evaluation
+    in_memory = render_report(evaluation, suppress_below=suppress_below)
+    loaded = render_report(Evaluation.load(folder), suppress_below=suppress_below)
+    assert in_memory.encode("utf-8") == loaded.encode("utf-8")
+    written = write_report(folder, suppress_below=suppress_below)
+    assert written.read_bytes() == in_memory.encode("utf-8")

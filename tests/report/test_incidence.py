@@ -17,7 +17,7 @@ import pytest
 from casemix.data.records import read_records
 from casemix.data.spec import load_spec
 from casemix.demo import COHORT_CUTOFF, REFERENCE_CUTOFF, REFERENCE_WINDOW, generate
-from casemix.evaluation.evaluate import evaluate
+from casemix.evaluation.evaluate import Evaluation, evaluate
 from casemix.model.reference import fit_reference
 from casemix.report.build import render_report
 
@@ -70,8 +70,9 @@ def test_competing_ends_are_the_deaths_with_a_working_graft(folders):
 
 def test_report_explains_the_difference_only_for_the_censored_outcome(folders, strict_html):
     out, _ = folders
-    html = render_report(out["graft_failure_death_censored"])
+    html = render_report(Evaluation.load(out["graft_failure_death_censored"]))
     strict_html(html)
     assert "Failure with a competing event" in html and "Aalen-Johansen" in html
     assert "follow-up ends without an event at death_date" in html
-    assert "Failure with a competing event" not in render_report(out["graft_failure"])
+    all_cause = render_report(Evaluation.load(out["graft_failure"]))
+    assert "Failure with a competing event" not in all_cause

@@ -29,7 +29,7 @@ from scipy import stats
 
 from casemix import demo
 from casemix._io import write_csv
-from casemix.evaluation.evaluate import evaluate
+from casemix.evaluation.evaluate import Evaluation, evaluate
 from casemix.report import render_report, write_public_release
 from casemix.report.disclosure import KEPT_COLUMNS
 from casemix.report.public import exclusions_by_reason
@@ -346,7 +346,7 @@ def naive_release(folder: Path, out: Path) -> Path:
     shutil.copy(folder / "run.json", out / "run.json")
     # its report hid the count cells only: O/E, E and the hazard ratio are those of the
     # internal report (the attacker reads only those numbers from the page)
-    (out / "report.html").write_text(render_report(folder), encoding="utf-8")
+    (out / "report.html").write_text(render_report(Evaluation.load(folder)), encoding="utf-8")
     return out
 
 

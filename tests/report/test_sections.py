@@ -46,13 +46,13 @@ def test_reach_sentences():
 
 
 def test_the_report_counts_corrections_per_program(corrections_folder, evaluation_folder):
-    from casemix.report.folder import read_evaluation_folder
+    from casemix.evaluation import Evaluation
     from casemix.report.sections import ReportOptions, data_quality_section
 
-    data = read_evaluation_folder(corrections_folder)
+    data = Evaluation.load(corrections_folder)
     html = str(data_quality_section(data, ReportOptions()).html)
     # LV03: 3 corrections of 2 records (C2 twice, C3 once), hand-counted
     assert "<td>LV03</td><td class=\"num\">1</td><td class=\"num\">1</td><td class=\"num\">1" \
            "</td><td class=\"num\">2</td>" in html
-    older = read_evaluation_folder(evaluation_folder)  # written before corrections.csv
+    older = Evaluation.load(evaluation_folder)  # written before corrections.csv
     assert "Not recorded" in str(data_quality_section(older, ReportOptions()).html)

@@ -1,34 +1,36 @@
 """The audit evaluates exactly as the evaluation did: its settings, and the check of verdicts.
 
-An evaluation folder's ``run.json`` holds the model fingerprint, the cut-off, the window, the
-verdict rules and the prior the evaluation used. :func:`evaluation_settings` reads them (and
-refuses a folder made with another model); after the audit has evaluated the cohort again,
-:func:`verdict_agreement` compares its verdicts with the folder's ``programs.csv`` and refuses
-any difference, so that one page never shows two verdicts for one program.
+An evaluation folder (read with ``Evaluation.load``) holds the model fingerprint, the cut-off,
+the window, the verdict rules and the prior the evaluation used. :func:`evaluation_settings`
+takes them (and refuses a folder made with another model); after the audit has evaluated the
+cohort again, :func:`verdict_agreement` compares its verdicts with the evaluation's and
+refuses any difference, so that one page never shows two verdicts for one program.
 """
 
 from __future__ import annotations
 
-import json
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from pathlib import Path
 
 import pandas as pd
 
 from casemix.errors import InputError
+from casemix.evaluation.evaluate import Evaluation
 from casemix.stats.shrinkage import Prior
-from casemix.stats.verdict import Rules, rules_from_dict
+from casemix.stats.verdict import Rules
 
-__all__ = ["EvaluationSettings", "check_audit_folder", "evaluation_settings", "verdict_agreement"]
+__all__ = ["EvaluationSettings", "check_audit", "evaluation_settings", "verdict_agreement"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class EvaluationSettings:
     """What an evaluation folder fixes for the audit.
 
     Attributes
     ----------
     folder : Path
+    evaluation : Evaluation
+        The evaluation as read from the folder.
     rules : Rules
     prior : Prior
         The prior as the evaluation used it (an estimated prior is not estimated again).
@@ -41,23 +43,12 @@ class EvaluationSettings:
     """
 
     folder: Path
+    evaluation: Evaluation
     rules: Rules
     prior: Prior
     cutoff: str | None
     window: tuple[str | None, str | None]
     records_sha256: str | None
-
-
-def _run_json(folder: Path) -> dict:
-    path = folder / "run.json"
-    if not path.is_file():
-        raise InputError(
-            f"{folder}: no run.json; pass the folder `casemix evaluate` wrote (--evaluation)"
-        )
-    try:
-        return json.loads(path.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as err:
-        raise InputError(f"{path}: not valid JSON ({err}); run the evaluation again") from err
 
 
 def evaluation_settings(folder: str | Path, model_fingerprint: str) -> EvaluationSettings:
@@ -73,41 +64,39 @@ def evaluation_settings(folder: str | Path, model_fingerprint: str) -> Evaluatio
     Raises
     ------
     InputError
-        No or unreadable ``run.json``, missing keys, or a model fingerprint that differs.
+        The folder does not pass ``Evaluation.load``, its run.json lacks the model
+        fingerprint or the whole prior, or the model fingerprint differs.
     """
     folder = Path(folder)
-    run = _run_json(folder)
-    try:
-        fingerprint = run["model"]["fingerprint"]
-        rules = rules_from_dict(run["rules"], source=str(folder / "run.json"))
-        stored = run["prior"]
-        values = {f.name: stored[f.name] for f in fields(Prior) if f.name in stored}
-        values["components"] = tuple(tuple(c) for c in values.get("components", ()))
-        prior = Prior(**values)
-        window = tuple(run.get("window") or (None, None))
-    except (KeyError, TypeError) as err:
+    evaluation = Evaluation.load(folder)
+    run = evaluation.run
+    fingerprint = run["model"].get("fingerprint") if isinstance(run["model"], dict) else None
+    if evaluation.prior is None or fingerprint is None:
+        missing = "the prior's mixture components" if fingerprint else "the model fingerprint"
         raise InputError(
-            f"{folder / 'run.json'}: lacks {err}; run the evaluation again with this version"
-        ) from err
+            f"{folder / 'run.json'}: lacks {missing}; run the evaluation again with this version"
+        )
     if fingerprint != model_fingerprint:
         raise InputError(
             f"the evaluation in {folder} was made with another reference model (fingerprint "
             f"{str(fingerprint)[:12]}, the audited model's is {model_fingerprint[:12]}); audit "
             "with the model the evaluation used"
         )
+    window = tuple(run.get("window") or (None, None))
     sha = run.get("inputs", {}).get("records", {}).get("sha256")
-    return EvaluationSettings(folder, rules, prior, run.get("cutoff"), window, sha)
+    return EvaluationSettings(folder, evaluation, evaluation.rules, evaluation.prior,
+                              run.get("cutoff"), window, sha)
 
 
-def verdict_agreement(programs: pd.DataFrame, folder: str | Path) -> int:
-    """Check that the audit's programs carry the evaluation folder's verdicts.
+def verdict_agreement(programs: pd.DataFrame, evaluation: Evaluation) -> int:
+    """Check that the audit's programs carry the evaluation's verdicts.
 
     Parameters
     ----------
     programs : DataFrame
         The audit's own evaluation: ``program``, ``verdict``.
-    folder : str or Path
-        The evaluation folder (its ``programs.csv``).
+    evaluation : Evaluation
+        The evaluation it must agree with (read with ``Evaluation.load``).
 
     Returns
     -------
@@ -119,34 +108,31 @@ def verdict_agreement(programs: pd.DataFrame, folder: str | Path) -> int:
     InputError
         A program missing on either side or any verdict that differs, naming the programs.
     """
-    path = Path(folder) / "programs.csv"
-    if not path.is_file():
-        raise InputError(f"{folder}: no programs.csv; pass the folder `casemix evaluate` wrote")
-    theirs = pd.read_csv(path, dtype={"program": str}).set_index("program")["verdict"]
+    theirs = evaluation.programs.set_index("program")["verdict"]
     ours = programs.assign(program=programs["program"].astype(str)).set_index("program")
     ours = ours["verdict"]
     if set(theirs.index) != set(ours.index):
         only = sorted(set(theirs.index) ^ set(ours.index))
         raise InputError(
-            f"the audit's cohort and the evaluation in {folder} hold different programs "
+            "the audit's cohort and the evaluation hold different programs "
             f"({', '.join(only[:5])}); pass the cohort records the evaluation read"
         )
     differ = sorted(p for p in ours.index if ours[p] != theirs[p])
     if differ:
         raise InputError(
-            f"the audit's verdicts differ from the evaluation in {folder} for "
-            f"{', '.join(differ[:5])}; pass the cohort records and cut-off the evaluation used"
+            f"the audit's verdicts differ from the evaluation for {', '.join(differ[:5])}; pass "
+            "the cohort records and cut-off the evaluation used"
         )
     return len(ours)
 
 
-def check_audit_folder(audit_folder: str | Path, run: dict) -> None:
+def check_audit(audit, run: dict) -> None:
     """Refuse to show an audit beside an evaluation it did not evaluate like.
 
     Parameters
     ----------
-    audit_folder : str or Path
-        A folder written by ``Audit.save`` (its ``audit.json``).
+    audit : Audit
+        The audit (:func:`casemix.audit.run_audit`, or read back with ``Audit.load``).
     run : dict
         The evaluation's ``run.json``.
 
@@ -155,22 +141,20 @@ def check_audit_folder(audit_folder: str | Path, run: dict) -> None:
     InputError
         The audit was made with another model, without a cohort, or with other rules or prior.
     """
-    path = Path(audit_folder) / "audit.json"
-    try:
-        facts = json.loads(path.read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as err:
-        raise InputError(f"{path}: cannot be read ({err}); run the audit again") from err
-    if facts.get("model_fingerprint") != run["model"]["fingerprint"]:
+    theirs = audit.facts.get("model_fingerprint")
+    ours = run["model"].get("fingerprint")
+    if ours is None or theirs != ours:
         raise InputError(
-            f"the audit in {audit_folder} checked another reference model than the "
-            "evaluation's; audit with the evaluation's model (casemix audit --evaluation)"
+            f"the audit is of another reference model (fingerprint {str(theirs)[:12]}..., the "
+            f"evaluation's is {str(ours)[:12]}...); audit the model the evaluation used "
+            "(casemix audit --evaluation), or leave the audit out."
         )
-    link = facts.get("evaluation")
-    same = link is not None and link["rules"] == run["rules"] and all(
-        link["prior"][k] == run["prior"][k] for k in ("shape", "rate")
+    link = audit.facts.get("evaluation")
+    same = isinstance(link, dict) and link.get("rules") == run["rules"] and all(
+        link.get("prior", {}).get(k) == run["prior"][k] for k in ("shape", "rate")
     )
     if not same:
         raise InputError(
-            f"the audit in {audit_folder} did not make its verdicts with this evaluation's "
-            "rules and prior; run it again with --evaluation on this evaluation folder"
+            "the audit did not make its verdicts with this evaluation's rules and prior; run "
+            "it again with --evaluation on this evaluation folder"
         )

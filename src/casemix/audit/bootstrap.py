@@ -38,12 +38,14 @@ __all__ = [
     "BootstrapResult",
     "ProgramArrays",
     "bootstrap_expected",
+    "check_replicates",
     "delta_expected",
     "mixture_interval",
     "resample_indices",
 ]
 
-@dataclass(frozen=True)
+
+@dataclass(frozen=True, eq=False)
 class ProgramArrays:
     """The evaluation cohort as arrays: what every replicate needs to recompute E.
 
@@ -94,7 +96,7 @@ class ProgramArrays:
         return self.sums(e)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class BootstrapResult:
     """Bootstrap of the reference fit carried to each program.
 
@@ -137,7 +139,7 @@ def resample_indices(n: int, seed_sequence: np.random.SeedSequence) -> np.ndarra
     return np.random.default_rng(seed_sequence).integers(0, n, n)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Refit:
     """One bootstrap replicate (picklable, so that a process pool can run it)."""
 
@@ -222,7 +224,14 @@ def delta_expected(fit, cohort: ProgramArrays, *, level: float = 0.95) -> pd.Dat
     )
 
 
-def _check_replicates(replicates: Any) -> int:
+def check_replicates(replicates: Any) -> int:
+    """Return the number of bootstrap replicates as an int, refusing fewer than 2.
+
+    Raises
+    ------
+    InputError
+        Not a whole number, or below 2.
+    """
     if isinstance(replicates, bool) or not isinstance(replicates, (int, np.integer)):
         raise InputError(f"bootstrap replicates must be a whole number, got {replicates!r}")
     if replicates < 2:
@@ -303,7 +312,7 @@ def bootstrap_expected(
     -------
     BootstrapResult
     """
-    replicates = _check_replicates(replicates)
+    replicates = check_replicates(replicates)
     level = check_level(level)
     observed = np.asarray(observed, dtype=float)
     task = _Refit(data.time, data.event, data.X, data.strata, fit.ties, fit.coef, cohort)

@@ -13,7 +13,7 @@ import numpy as np
 import pandas as pd
 from scipy import stats
 
-from casemix.audit._optional import require
+from casemix._optional import require
 from casemix.errors import InputError, plural
 from casemix.stats.poisson import as_observed_expected, check_level, oe_interval
 

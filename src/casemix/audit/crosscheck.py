@@ -9,7 +9,7 @@
   (one failure time late) nor lifelines' ``predict_cumulative_hazard(times=...)`` (linear
   interpolation between training times) is used for this, as both give other numbers.
 
-Both libraries are optional and imported only here (through ``casemix.audit._optional``).
+Both libraries are optional and imported only here (through ``casemix._optional``).
 """
 
 from __future__ import annotations
@@ -19,7 +19,7 @@ import warnings
 import numpy as np
 import pandas as pd
 
-from casemix.audit._optional import require
+from casemix._optional import require
 from casemix.audit.bootstrap import ProgramArrays
 
 __all__ = ["CROSSCHECK_COLUMNS", "crosscheck_lifelines", "crosscheck_statsmodels"]

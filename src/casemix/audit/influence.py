@@ -22,7 +22,7 @@ from casemix.survival import fit_cox
 __all__ = ["leave_one_program_out"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Without:
     """Refit without one program's reference recipients (picklable for a process pool)."""
 

@@ -40,7 +40,7 @@ from casemix.audit.wald import wald_groups
 from casemix.data.design import natural_spline_basis
 from casemix.errors import InputError, plural
 from casemix.survival import kaplan_meier
-from casemix.survival._validate import as_matrix, as_time_event, as_weights
+from casemix.survival.validate import as_matrix, as_time_event, as_weights
 
 __all__ = [
     "TRANSFORMS",
@@ -56,7 +56,7 @@ __all__ = [
 TRANSFORMS = ("identity", "log", "rank", "km", "km_left")
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Events:
     """The rows with an event, in ascending time order (ties by row), and their residuals."""
 

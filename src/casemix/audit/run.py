@@ -9,6 +9,7 @@ multiplicity).
 
 from __future__ import annotations
 
+import json
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, field
 from functools import partial
@@ -19,12 +20,12 @@ import numpy as np
 import pandas as pd
 
 from casemix._io import atomic_write_text, sha256_file, write_csv, write_json
-from casemix.audit._optional import available
+from casemix._optional import available
 from casemix.audit.agreement import evaluation_settings, verdict_agreement
 from casemix.audit.bootstrap import (
     ProgramArrays,
-    _check_replicates,
     bootstrap_expected,
+    check_replicates,
     delta_expected,
 )
 from casemix.audit.calibration import (
@@ -39,11 +40,10 @@ from casemix.audit.influence import leave_one_program_out
 from casemix.audit.ph import TRANSFORMS, ph_test, ph_test_groups, schoenfeld_residuals
 from casemix.audit.sensitivity import prior_sensitivity, verdict_changes
 from casemix.audit.wald import wald_groups
-from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, read_records
 from casemix.errors import InputError
 from casemix.evaluation.evaluate import evaluate
-from casemix.model.reference import ReferenceModel, reference_data, resolve_analysis
+from casemix.model.reference import ReferenceModel, reference_data
 from casemix.parallel import DEFAULT_WORKERS, replicate_map
 from casemix.report.audit_page import audit_html
 from casemix.stats.dispersion import MIN_PROGRAMS, adjusted_funnel_limits, overdispersion
@@ -56,9 +56,11 @@ __all__ = ["HORIZONS", "Audit", "run_audit"]
 HORIZONS = (30, 90, 365, 1095)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Audit:
     """The audit's tables and findings (a snapshot; see :func:`run_audit`).
+
+    :meth:`save` writes it to a folder and :meth:`load` reads it back.
 
     Attributes
     ----------
@@ -71,8 +73,9 @@ class Audit:
         ``bootstrap_coefficients``, ``bootstrap_draws``, ``influence``, ``fdr``. Risk
         groups (``calibration_risk``) are on one scale for both populations: the log
         relative risk against the reference population's average recipient.
-    schoenfeld : DataFrame
-        Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot.
+    schoenfeld : DataFrame or None
+        Scaled Schoenfeld residuals of the reference fit (one row per event), for the plot;
+        not saved, so None for an audit read back by :meth:`load`.
     findings : tuple of str
         Plain-words findings, most important checks first.
     facts : dict
@@ -80,7 +83,7 @@ class Audit:
     """
 
     tables: dict[str, pd.DataFrame]
-    schoenfeld: pd.DataFrame
+    schoenfeld: pd.DataFrame | None
     findings: tuple[str, ...]
     facts: dict[str, Any] = field(default_factory=dict)
 
@@ -97,6 +100,53 @@ class Audit:
         write_json(folder / "audit.json", self.facts)
         atomic_write_text(folder / "audit.html", audit_html(self))
         return folder
+
+    @classmethod
+    def load(cls, folder: str | Path) -> Audit:
+        """Read an audit folder written by :meth:`save`: every CSV, the findings and facts.
+
+        Raises
+        ------
+        InputError
+            Not a folder, ``findings.json`` or ``audit.json`` missing (an empty list of
+            findings would then read like a clean audit) or not valid, or a CSV that cannot
+            be read; the message names the file.
+        """
+        folder = Path(folder)
+        if not folder.is_dir():
+            raise InputError(f"{folder}: audit folder not found; pass the folder `casemix "
+                             "audit` wrote, or leave it out.")
+        absent = [n for n in ("findings.json", "audit.json") if not (folder / n).is_file()]
+        if absent:
+            raise InputError(
+                f"{folder}: not a complete audit folder ({' and '.join(absent)} missing), so "
+                "an empty list of findings would read like a clean audit. Pass the folder "
+                "`casemix audit ... --out DIR` wrote, or run the audit again."
+            )
+        findings, facts = (_json(folder / name) for name in ("findings.json", "audit.json"))
+        if not isinstance(findings, list):
+            raise InputError(f"{folder / 'findings.json'}: must hold a list of findings; run "
+                             "the audit again.")
+        if not isinstance(facts, dict):
+            raise InputError(f"{folder / 'audit.json'}: must hold an object of facts; run the "
+                             "audit again.")
+        tables = {}
+        for path in sorted(folder.glob("*.csv")):
+            try:
+                tables[path.stem] = pd.read_csv(path)
+            except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as err:
+                raise InputError(f"{path}: cannot be read as CSV ({err}); run the audit "
+                                 "again.") from err
+        texts = tuple(i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
+                      for i in findings)
+        return cls(tables=tables, schoenfeld=None, findings=texts, facts=facts)
+
+
+def _json(path: Path) -> Any:
+    try:
+        return json.loads(path.read_text(encoding="utf-8"))
+    except (json.JSONDecodeError, UnicodeDecodeError) as err:
+        raise InputError(f"{path}: not valid JSON ({err}); run the audit again.") from err
 
 
 def _load(model, reference_records):
@@ -173,17 +223,11 @@ def _evaluation(cohort_records, model, cutoff, window, settings):
         records, model, settings["rules"], settings["prior"], free_mean=settings["free_mean"],
         cutoff=cutoff, window=window,
     )  # fmt: skip
-    cut = cutoff if cutoff is not None else records.cutoff
-    _, cut, win = resolve_analysis(model.spec, model.horizon_days, cut, window)
-    cohort = build_cohort(records, model.outcome, model.horizon_days, cut, win)
-    X, strata = model.matrices(cohort)
+    frame = evaluation.expected.cohort.frame  # the evaluation's own cohort and design matrix
     arrays = ProgramArrays.build(
-        cohort.frame["time"].to_numpy(float), X, strata,
-        cohort.frame[model.spec.columns.program].astype(str),
+        frame["time"].to_numpy(float), evaluation.expected.X, evaluation.expected.strata,
+        frame[model.spec.columns.program].astype(str),
     )  # fmt: skip
-    ids = cohort.frame[model.spec.columns.recipient].astype(str).to_numpy()
-    if not np.array_equal(ids, evaluation.recipients["recipient"].astype(str).to_numpy()):
-        raise InputError("the cohort rows do not line up with the evaluation; run it again")
     return evaluation, arrays
 
 
@@ -206,7 +250,8 @@ def _settings(model, cohort_records, rules, prior, free_mean, folder) -> dict[st
             )
     window = None if found.window == (None, None) else found.window
     return {"rules": found.rules, "prior": found.prior, "free_mean": False, "folder": folder,
-            "cutoff": found.cutoff, "window": window}  # fmt: skip
+            "cutoff": found.cutoff, "window": window,
+            "evaluation": found.evaluation}  # fmt: skip
 
 
 def _dispersion(programs: pd.DataFrame) -> dict[str, pd.DataFrame]:
@@ -371,7 +416,7 @@ def run_audit(
             "(--cohort)"
         )
     if cohort_records is not None:
-        _check_replicates(bootstrap)  # before any work, not after the model checks
+        check_replicates(bootstrap)  # before any work, not after the model checks
     model, data = _load(model, reference_records)
     reference_programs = ProgramArrays.build(
         data.time, data.X, data.strata,
@@ -405,7 +450,7 @@ def run_audit(
             "rules": evaluation.rules.to_dict(),
             "prior": evaluation.prior.to_dict(),
             "programs_agreeing": None if link is None else verdict_agreement(
-                evaluation.programs, link
+                evaluation.programs, settings["evaluation"]
             ),
         }  # fmt: skip
         if map_fn is None:

@@ -26,7 +26,7 @@ __all__ = ["EXCLUDED_SHARE_WARNING", "CheckResult", "check_extract", "reason_war
 EXCLUDED_SHARE_WARNING = 0.20
 
 
-@dataclass(frozen=True, repr=False)
+@dataclass(frozen=True, repr=False, eq=False)
 class CheckResult:
     """The findings of :func:`check_extract`.
 

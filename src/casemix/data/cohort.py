@@ -55,7 +55,7 @@ _DAY = pd.Timedelta(days=1)
 DAY_ZERO_TIME = 0.5
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Cohort:
     """Recipients with their follow-up for one outcome, horizon and cut-off.
 

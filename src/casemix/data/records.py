@@ -60,7 +60,7 @@ _WRONG_TYPE_MIN = 3
 _SHOW = 5  # how many examples a message shows
 
 
-@dataclass(frozen=True, repr=False)
+@dataclass(frozen=True, repr=False, eq=False)
 class Records:
     """A validated extract.
 

@@ -1,11 +1,13 @@
 """The Python API of a whole evaluation: cohort -> expected -> programs -> shrinkage -> verdicts.
 
-``evaluate`` wires the stages; ``Evaluation.save`` writes the evaluation folder (the file
-contract the report and the command line read; see DEVELOPERS.md).
+``evaluate`` wires the stages; ``Evaluation.save`` writes the evaluation folder and
+``Evaluation.load`` reads it back, checked against the file contract of
+:mod:`casemix.evaluation.folder`.
 """
 
 from __future__ import annotations
 
+import json
 import warnings
 from dataclasses import dataclass, replace
 from pathlib import Path
@@ -21,48 +23,24 @@ from casemix.data.check import reason_warnings
 from casemix.data.cohort import build_cohort
 from casemix.data.records import Records, count_by_kind, read_records
 from casemix.errors import DataWarning, InputError, plural
-from casemix.evaluation.expected import expected_events
+from casemix.evaluation.expected import ExpectedEvents, expected_events
 from casemix.evaluation.explain import casemix_contributions
+from casemix.evaluation.folder import PROGRAM_COLUMNS, TABLES, read_run, read_tables
 from casemix.evaluation.programs import program_table, survival_curves
 from casemix.model.reference import FORMAT_VERSION, ReferenceModel, resolve_analysis
 from casemix.stats.poisson import network_oe
 from casemix.stats.shrinkage import Prior, posterior
-from casemix.stats.verdict import Rules, assign_verdicts, load_rules
+from casemix.stats.verdict import Rules, assign_verdicts, load_rules, rules_from_dict
 
-PROGRAM_COLUMNS = [
-    "program",
-    "recipients",
-    "observed",
-    "expected",
-    "oe_ratio",
-    "hr_mean",
-    "hr_lower",
-    "hr_upper",
-    "p_above",
-    "p_below",
-    "verdict",
-    "observed_survival",
-    "expected_survival",
-    "oe_lower",
-    "oe_upper",
-    "hr_median",
-    "weight",
-    "observed_survival_lower",
-    "observed_survival_upper",
-    "events_to_excess",
-    "events_to_favorable",
-    "p_more_exact",
-    "p_fewer_exact",
-    "casemix_factor",
-    "events_more_to_change",
-    "events_fewer_to_change",
-    "excess_reachable",
-    "favorable_reachable",
-    "detectable_hr_excess",
-    "detectable_hr_favorable",
-    "null_flag_probability",
-    "competing_events",
-    "cumulative_incidence",
+__all__ = [
+    "CAUTIONS",
+    "INPUT_FILES",
+    "NETWORK_TEST_LEVEL",
+    "OWNED_FILES",
+    "PROGRAM_COLUMNS",
+    "Evaluation",
+    "coefficient_table",
+    "evaluate",
 ]
 
 NETWORK_TEST_LEVEL = 0.05
@@ -70,11 +48,7 @@ NETWORK_TEST_LEVEL = 0.05
 
 #: Entries of an evaluation folder that belong to one evaluation: a new save replaces them all
 #: (a stale report or public release of an earlier run never stays beside new results).
-OWNED_FILES = (
-    "programs.csv", "recipients.csv", "exclusions.csv", "corrections.csv", "followup.csv",
-    "casemix.csv", "curves.csv", "coefficients.csv", "out_of_range.csv", "run.json",
-    "report.html", "public",
-)  # fmt: skip
+OWNED_FILES = (*(table.name for table in TABLES), "run.json", "report.html", "public")
 #: Inputs that may sit beside the results (``casemix demo`` writes them there); kept as they are.
 INPUT_FILES = ("reference.csv", "cohort.csv", "spec.toml", "rules.toml", "model.json")
 
@@ -90,21 +64,21 @@ CAUTIONS = (
 )
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Evaluation:
     """The result of :func:`evaluate`: tables plus the facts of the run.
+
+    The same object is read back from its folder by :meth:`load`; the tables' columns are
+    the file contract of :mod:`casemix.evaluation.folder`.
 
     Attributes
     ----------
     programs : DataFrame
-        One row per program, columns ``PROGRAM_COLUMNS`` (the first 13 fixed by the design).
+        One row per program, sorted by code, columns ``PROGRAM_COLUMNS``.
     recipients : DataFrame
         ``recipient``, ``program``, ``time``, ``event``, ``expected``, ``lp``, ``stratum``.
     exclusions : DataFrame
         ``row``, ``recipient``, ``reason``, ``program``, ``kind``.
-    corrections : DataFrame
-        ``row``, ``recipient``, ``program``, ``kind``: one line per correction of a recipient
-        kept in the cohort (see casemix.data.records).
     followup : DataFrame
         Per program: follow-up completeness and lost to follow-up.
     casemix : DataFrame
@@ -113,12 +87,25 @@ class Evaluation:
         Observed and expected survival per program on a grid of days.
     coefficients : DataFrame
         The reference model's terms with hazard ratios and 95% limits.
-    out_of_range : DataFrame
-        Recipients with covariates outside the reference range, per program and covariate.
-    prior : Prior
+    out_of_range : DataFrame or None
+        Recipients with covariates outside the reference range, per program and covariate;
+        None when loaded from a folder written before this table was saved.
+    prior : Prior or None
+        The prior the verdicts were made with; None when loaded from a folder whose run.json
+        does not hold it whole (a hierarchical prior written without its components).
     rules : Rules
+        The verdict rules. Loaded from a folder, their ``[prior]`` settings are the defaults:
+        run.json keeps the prior they chose, not how it was chosen.
     run : dict
         The content of ``run.json``.
+    corrections : DataFrame or None
+        ``row``, ``recipient``, ``program``, ``kind``: one line per correction of a recipient
+        kept in the cohort (see casemix.data.records); None when loaded from a folder written
+        before corrections were saved.
+    expected : ExpectedEvents or None
+        What :func:`evaluate` computed the tables from: the cohort, its design matrix and
+        strata, rows as in ``recipients`` (so that later stages such as the audit need not
+        build them again). Not saved: None for an evaluation read back by :meth:`load`.
     """
 
     programs: pd.DataFrame
@@ -128,11 +115,12 @@ class Evaluation:
     casemix: pd.DataFrame
     curves: pd.DataFrame
     coefficients: pd.DataFrame
-    out_of_range: pd.DataFrame
-    prior: Prior
+    out_of_range: pd.DataFrame | None
+    prior: Prior | None
     rules: Rules
     run: dict
     corrections: pd.DataFrame | None = None
+    expected: ExpectedEvents | None = None
 
     def save(self, folder: str | Path) -> Path:
         """Write the evaluation files into ``folder`` as a whole (see casemix._io.replace_folder).
@@ -151,21 +139,56 @@ class Evaluation:
                               allowed=INPUT_FILES)
 
     def _write(self, folder: Path) -> None:
-        tables = {
-            "programs.csv": self.programs,
-            "recipients.csv": self.recipients,
-            "exclusions.csv": self.exclusions,
-            "corrections.csv": self.corrections,
-            "followup.csv": self.followup,
-            "casemix.csv": self.casemix,
-            "curves.csv": self.curves,
-            "coefficients.csv": self.coefficients,
-            "out_of_range.csv": self.out_of_range,
-        }
-        for name, table in tables.items():
-            if table is not None:
-                write_csv(folder / name, table)
+        for table in TABLES:
+            frame = getattr(self, table.attribute)
+            if frame is not None:
+                write_csv(folder / table.name, frame, exact=True)  # load gives it back
         write_json(folder / "run.json", self.run)
+
+    @classmethod
+    def load(cls, folder: str | Path) -> Evaluation:
+        """Read an evaluation folder written by :meth:`save`, checked against its contract.
+
+        Text columns (program codes, verdicts, terms, reasons) are read as written, numbers
+        as floats; ``corrections.csv`` and ``out_of_range.csv`` may be absent (folders of
+        earlier versions). The prior and the rules are rebuilt from ``run.json``.
+
+        Parameters
+        ----------
+        folder : str or Path
+            The folder written by ``Evaluation.save``.
+
+        Returns
+        -------
+        Evaluation
+
+        Raises
+        ------
+        InputError
+            For a missing file, column or run.json key, a non-numeric value in a numeric
+            column, an empty or repeated program code, an unknown verdict, or a prior or
+            rules in run.json that are not valid; the message names the file, the column and
+            the lines.
+        """
+        folder = Path(folder)
+        if not folder.is_dir():
+            raise InputError(f"{folder}: not a folder; pass the folder an evaluation was "
+                             "saved to.")
+        tables = read_tables(folder)
+        run = read_run(folder)
+        path = folder / "run.json"
+        return cls(**tables, prior=_stored_prior(run["prior"], path),
+                   rules=rules_from_dict(run["rules"], source=str(path)), run=run)
+
+
+def _stored_prior(values: Any, path: Path) -> Prior | None:
+    if isinstance(values, dict) and values.get("method") == "hierarchical" and not values.get(
+            "components"):
+        return None  # written before the mixture's components were kept
+    try:
+        return Prior.from_dict(values)
+    except InputError as err:
+        raise InputError(f"{path}: {err} Write the evaluation again.") from err
 
 
 def coefficient_table(model: ReferenceModel, level: float = 0.95) -> pd.DataFrame:
@@ -282,6 +305,8 @@ def evaluate(
     run.update(_network_facts(programs, prior, rules))
     run["cautions"] = list(CAUTIONS) + _network_cautions(run, prior)
     run["provenance"] = provenance
+    # as run.json holds it (keys sorted, lists), so that a loaded evaluation has the same run
+    run = json.loads(json.dumps(run, sort_keys=True, allow_nan=False))
     return Evaluation(
         programs=programs[PROGRAM_COLUMNS],
         recipients=expected.frame.drop(columns="expected_at_horizon"),
@@ -295,6 +320,7 @@ def evaluate(
         rules=rules,
         run=run,
         corrections=cohort.corrections,
+        expected=expected,
     )
 
 

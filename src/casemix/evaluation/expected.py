@@ -17,8 +17,13 @@ from casemix.data.cohort import Cohort
 from casemix.errors import DataWarning, InputError, plural
 from casemix.model.reference import ReferenceModel
 
+__all__ = [
+    "ExpectedEvents",
+    "expected_events",
+]
 
-@dataclass(frozen=True)
+
+@dataclass(frozen=True, eq=False)
 class ExpectedEvents:
     """Per-recipient expected events of a cohort.
 
@@ -33,11 +38,17 @@ class ExpectedEvents:
         Per program and covariate, the number of recipients whose value lies outside the range
         seen in the reference population (``program``, ``covariate``, ``recipients``).
     cohort : Cohort
+    X : ndarray, shape (n, p)
+        The cohort's design matrix under the model's frozen design, rows as in ``frame``.
+    strata : ndarray, shape (n,), or None
+        The cohort's strata (None for an unstratified model).
     """
 
     frame: pd.DataFrame
     out_of_range: pd.DataFrame
     cohort: Cohort
+    X: np.ndarray
+    strata: np.ndarray | None
 
 
 def expected_events(cohort: Cohort, model: ReferenceModel) -> ExpectedEvents:
@@ -78,7 +89,8 @@ def expected_events(cohort: Cohort, model: ReferenceModel) -> ExpectedEvents:
         }
     )
     return ExpectedEvents(
-        frame=out, out_of_range=_out_of_range(model, frame, out["program"]), cohort=cohort
+        frame=out, out_of_range=_out_of_range(model, frame, out["program"]), cohort=cohort,
+        X=X, strata=strata,
     )
 
 

@@ -18,6 +18,12 @@ from casemix.model.reference import ReferenceModel
 from casemix.stats.poisson import exact_p_values, oe_interval
 from casemix.survival import cumulative_incidence, kaplan_meier
 
+__all__ = [
+    "MAX_CURVE_POINTS",
+    "program_table",
+    "survival_curves",
+]
+
 MAX_CURVE_POINTS = 400
 
 

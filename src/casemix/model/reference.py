@@ -27,6 +27,20 @@ from casemix.data.spec import Spec, load_spec, spec_from_dict
 from casemix.errors import InputError, ModelFileError, ModelVersionWarning, plural
 from casemix.survival import BaselineHazard, ChiSquareTest, CoxFit, concordance, fit_cox
 
+__all__ = [
+    "FORMAT_VERSION",
+    "MODEL_KIND",
+    "PATH_NODES",
+    "ReferenceData",
+    "ReferenceModel",
+    "fit_reference",
+    "group_terms",
+    "model_from_dict",
+    "path_contributions",
+    "reference_data",
+    "resolve_analysis",
+]
+
 FORMAT_VERSION = 2
 """2: ``casemix_reference`` holds the follow-up weighted anchor (``anchor``); 1 held per-group
 log-mean-exp values, which are not the reference population's mean risk and are refused."""
@@ -34,7 +48,7 @@ MODEL_KIND = "casemix reference model"
 PATH_NODES = 32
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class ReferenceData:
     """What a reference fit is computed from.
 
@@ -93,7 +107,7 @@ def reference_data(
     )
 
 
-@dataclass(frozen=True, repr=False)
+@dataclass(frozen=True, repr=False, eq=False)
 class ReferenceModel:
     """A fitted reference model: everything needed to compute expected events for a cohort.
 

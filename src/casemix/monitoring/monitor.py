@@ -60,7 +60,7 @@ SERIES_COLUMNS = [
 SIGNAL_COLUMNS = ["program", "chart", "date", "g", "h", "observed", "expected"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Monitoring:
     """The monitoring of every program over one period.
 
@@ -97,7 +97,7 @@ class Monitoring:
         return folder
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Program:
     """One program's recipients in calendar days from the start (internal)."""
 

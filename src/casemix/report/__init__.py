@@ -1,8 +1,9 @@
 """The self-contained HTML report of an evaluation, and the page pieces it is built from.
 
-``write_report(folder)`` reads an evaluation folder and writes ``report.html``: inline CSS
-and SVG figures (matplotlib), no scripts and no outside requests. ``casemix.report.page``
-holds the general pieces (sections, tables, figures) that other pages reuse.
+``render_report(evaluation, audit=None)`` renders an Evaluation (and an Audit) as one page:
+inline CSS and SVG figures (matplotlib), no scripts and no outside requests.
+``write_report(folder)`` loads an evaluation folder and writes its ``report.html``.
+``casemix.report.page`` holds the general pieces (sections, tables, figures) that other pages reuse.
 ``write_public_release(folder, n)`` applies the disclosure rule (``disclosure``) and writes
 the public tables and report to a folder of their own.
 """

@@ -155,7 +155,7 @@ def _figure(fig, alt: str, caption: str) -> Markup:
 
 def _figures(title: str, audit) -> list[Markup]:
     t = audit.tables
-    if title == "Proportional hazards":
+    if title == "Proportional hazards" and audit.schoenfeld is not None:
         coefficients = t["coefficients"]
         fig = schoenfeld_figure(
             audit.schoenfeld, coefficients["coef"].to_numpy(), list(coefficients["term"])

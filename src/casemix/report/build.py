@@ -1,13 +1,14 @@
-"""Build the self-contained HTML report of one evaluation folder."""
+"""Build the self-contained HTML report of one evaluation, in memory or read from its folder."""
 
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from casemix._io import atomic_write_text
-from casemix.audit.agreement import check_audit_folder
+from casemix.audit.agreement import check_audit
 from casemix.errors import InputError
-from casemix.report.folder import EvaluationFolder, read_evaluation_folder
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.incidence import competing_section
 from casemix.report.page import render_page
 from casemix.report.sections import (
@@ -21,6 +22,9 @@ from casemix.report.sections import (
     scale_section,
 )
 from casemix.report.suppress import check_threshold, suppressed_text
+
+if TYPE_CHECKING:  # casemix.audit.run imports this package for the audit page
+    from casemix.audit.run import Audit
 
 __all__ = ["REPORT_CAUTIONS", "render_report", "report_cautions", "report_page", "write_report"]
 
@@ -41,7 +45,7 @@ REPORT_CAUTIONS = (
 recorded in run.json already names its topic, so that the page does not say it twice."""
 
 
-def report_cautions(data: EvaluationFolder, options: ReportOptions) -> list[str]:
+def report_cautions(data: Evaluation, options: ReportOptions) -> list[str]:
     """Return the cautions of a report: run.json's, the standing ones, then this report's."""
     cautions = [str(c) for c in data.run.get("cautions", [])]
     recorded = " ".join(cautions).lower()
@@ -62,26 +66,27 @@ def report_cautions(data: EvaluationFolder, options: ReportOptions) -> list[str]
 
 
 def render_report(
-    folder: str | Path,
+    evaluation: Evaluation,
     *,
+    audit: Audit | None = None,
     suppress_below: int | None = None,
-    audit_folder: str | Path | None = None,
     log_expected: bool = False,
 ) -> str:
-    """Return the HTML report of an evaluation folder.
+    """Return the HTML report of an evaluation.
 
     Parameters
     ----------
-    folder : str or Path
-        The folder written by ``Evaluation.save`` (programs.csv, recipients.csv,
-        exclusions.csv, followup.csv, casemix.csv, curves.csv, coefficients.csv, run.json).
+    evaluation : Evaluation
+        The evaluation, as :func:`casemix.evaluation.evaluate` returns it or as
+        ``Evaluation.load`` reads it back from its folder (both give the same page).
+    audit : Audit, optional
+        An audit of the same model, rules and prior (:func:`casemix.audit.run_audit`, or
+        ``Audit.load``): its findings and every table become a last section (internal
+        report only: the audit is not part of a public release).
     suppress_below : int, optional
         Return the public report instead: the disclosure rule with threshold N (at least 2)
         is applied first (:func:`casemix.report.disclosure.make_release`), so counts from 1
         to N - 1 and every figure that gives them back are withheld or coarsened.
-    audit_folder : str or Path, optional
-        A folder written by the audit: its findings and every CSV become a last section
-        (internal report only: the audit is not part of a public release).
     log_expected : bool, default False
         Logarithmic E axis in the funnel plot.
 
@@ -89,40 +94,37 @@ def render_report(
     -------
     str
         One self-contained HTML document (inline CSS and SVG, no scripts, no outside
-        requests). The same folder always gives the same text.
+        requests). The same evaluation always gives the same text.
 
     Raises
     ------
     InputError
-        For a missing or malformed file in the folder, or a bad ``suppress_below``.
+        An audit of another model, rules or prior, an audit with ``suppress_below``, or a bad
+        ``suppress_below``.
     """
     if suppress_below is not None:
-        return _public_report(folder, check_threshold(suppress_below), audit_folder,
-                              log_expected)
+        return _public_report(evaluation, check_threshold(suppress_below), audit, log_expected)
     options = ReportOptions(log_expected=log_expected)
-    if audit_folder is not None and not Path(audit_folder).is_dir():
-        raise InputError(f"{audit_folder}: audit folder not found; pass the folder `casemix "
-                         "audit` wrote, or leave it out.")
-    data = read_evaluation_folder(folder)
+    if audit is not None:
+        check_audit(audit, evaluation.run)  # same model, rules and prior as the evaluation
     sections = [
-        evaluated_section(data, options),
-        overview_section(data, options),
-        scale_section(data, options),
-        each_program_section(data, options),
-        data_quality_section(data, options),
-        model_section(data, options),
+        evaluated_section(evaluation, options),
+        overview_section(evaluation, options),
+        scale_section(evaluation, options),
+        each_program_section(evaluation, options),
+        data_quality_section(evaluation, options),
+        model_section(evaluation, options),
     ]
-    competing = competing_section(data, options)
+    competing = competing_section(evaluation, options)
     if competing is not None:
         sections.insert(-1, competing)
-    if audit_folder is not None:
-        audit = audit_section(audit_folder, data.run["model"].get("fingerprint"))
-        check_audit_folder(audit_folder, data.run)  # same rules and prior as the evaluation
-        sections.append(audit)
-    return report_page("Observed and expected outcomes by program", sections, data, options)
+    if audit is not None:
+        sections.append(audit_section(audit))
+    return report_page("Observed and expected outcomes by program", sections, evaluation,
+                       options)
 
 
-def report_page(title: str, sections: list, data: EvaluationFolder,
+def report_page(title: str, sections: list, data: Evaluation,
                 options: ReportOptions) -> str:
     """Render a report's sections as a page with its cautions, summary line and footer."""
     run = data.run
@@ -140,16 +142,16 @@ def report_page(title: str, sections: list, data: EvaluationFolder,
     )
 
 
-def _public_report(folder, n: int, audit_folder, log_expected: bool) -> str:
+def _public_report(evaluation: Evaluation, n: int, audit: Audit | None,
+                   log_expected: bool) -> str:
     # Imported here: the public report reuses this module's cautions.
     from casemix.report.disclosure import make_release
     from casemix.report.public_report import render_public_report
 
-    if audit_folder is not None:
+    if audit is not None:
         raise InputError("the audit is not part of a public release; leave out the audit "
-                         "folder when suppressing counts.")
-    release = make_release(read_evaluation_folder(folder), n)
-    return render_public_report(release, log_expected=log_expected)
+                         "when suppressing counts.")
+    return render_public_report(make_release(evaluation, n), log_expected=log_expected)
 
 
 def write_report(
@@ -160,26 +162,31 @@ def write_report(
     audit_folder: str | Path | None = None,
     log_expected: bool = False,
 ) -> Path:
-    """Write the HTML report of an evaluation folder (atomically) and return its path.
+    """Read an evaluation folder (and an audit folder), write its HTML report atomically.
 
     Parameters
     ----------
     folder : str or Path
-        The evaluation folder (see :func:`render_report`).
+        The folder written by ``Evaluation.save``, read with ``Evaluation.load``.
     out : str or Path, optional
         The file to write; default ``folder / "report.html"``, and for a public report
         (``suppress_below``) ``folder / "public" / "report.html"``: a public report is never
         written over the internal one.
-    suppress_below, audit_folder, log_expected
+    suppress_below, log_expected
         As in :func:`render_report`.
+    audit_folder : str or Path, optional
+        A folder written by ``Audit.save``, read with ``Audit.load``.
 
     Returns
     -------
     Path
         The file written.
+
+    Raises
+    ------
+    InputError
+        For a missing or malformed file in either folder, or as :func:`render_report`.
     """
-    html = render_report(folder, suppress_below=suppress_below, audit_folder=audit_folder,
-                         log_expected=log_expected)
     internal = Path(folder) / "report.html"
     if suppress_below is None:
         target = internal if out is None else Path(out)
@@ -188,4 +195,10 @@ def write_report(
         if target.resolve() == internal.resolve():
             raise InputError(f"{target}: the public report cannot replace the internal one; "
                              "write it to another file (default public/report.html).")
+    from casemix.audit.run import Audit  # see the import at the top
+
+    evaluation = Evaluation.load(folder)
+    audit = None if audit_folder is None else Audit.load(audit_folder)
+    html = render_report(evaluation, audit=audit, suppress_below=suppress_below,
+                         log_expected=log_expected)
     return atomic_write_text(target, html)

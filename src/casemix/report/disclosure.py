@@ -1,6 +1,6 @@
 """The disclosure rule of a public release: which figures are withheld or coarsened, and why.
 
-This module works on numbers only (no HTML): it turns an evaluation folder into the tables
+This module works on numbers only (no HTML): it turns an evaluation into the tables
 of a public release (:class:`PublicRelease`). The rule is written out for readers in
 docs/disclosure.md; in short, with threshold N:
 
@@ -33,7 +33,7 @@ import numpy as np
 import pandas as pd
 
 from casemix.errors import plural
-from casemix.report.folder import EvaluationFolder, read_csv_as_written
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.plots import at_risk_times
 from casemix.report.public import corrections_by_kind, exclusions_by_reason
 from casemix.report.suppress import check_threshold, suppress_value, suppressed_text
@@ -75,7 +75,7 @@ MIN_SPREAD = 3
 this much (max - min), so that no guess is sure to be within one of it."""
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class PublicRelease:
     """The public tables of one evaluation, and the list of what they withhold.
 
@@ -323,7 +323,7 @@ def _count_texts(values: pd.Series, n: int) -> list[str | None]:
     return [suppress_value(v, n) for v in values]
 
 
-def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
+def _public_programs(data: Evaluation, n: int, log: list) -> pd.DataFrame:
     programs = data.programs
     protected = protected_programs(programs, n)
     prior_facts = data.run["prior"]
@@ -358,7 +358,7 @@ def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
     return out
 
 
-def _public_curves(data: EvaluationFolder, shown: list[str], n: int, log: list
+def _public_curves(data: Evaluation, shown: list[str], n: int, log: list
                    ) -> pd.DataFrame:
     horizon = float(data.run["horizon_days"])
     level = float(data.run.get("credible_level", 0.95))
@@ -430,13 +430,14 @@ def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
     return public
 
 
-def make_release(data: EvaluationFolder, n: int) -> PublicRelease:
-    """Apply the disclosure rule to an evaluation folder.
+def make_release(data: Evaluation, n: int) -> PublicRelease:
+    """Apply the disclosure rule to an evaluation.
 
     Parameters
     ----------
-    data : EvaluationFolder
-        The internal evaluation (it is not changed).
+    data : Evaluation
+        The internal evaluation, in memory or read back with ``Evaluation.load`` (it is not
+        changed).
     n : int
         The threshold N, at least 2.
 
@@ -490,9 +491,8 @@ def make_release(data: EvaluationFolder, n: int) -> PublicRelease:
     }
     if data.corrections is not None:
         tables["corrections_by_kind.csv"] = kinds
-    extra = data.path / "out_of_range.csv"
-    if extra.is_file():  # written by newer evaluations; older folders do not have it
-        ranges = read_csv_as_written(extra, ["program", "covariate"])
+    if data.out_of_range is not None:  # folders of older evaluations do not have it
+        ranges = data.out_of_range
         tables["out_of_range.csv"] = ranges.assign(
             recipients=_count_texts(ranges["recipients"], n))
     return PublicRelease(

@@ -10,7 +10,7 @@ from __future__ import annotations
 import pandas as pd
 from markupsafe import Markup
 
-from casemix.report.folder import EvaluationFolder
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.page import Section, table_html
 from casemix.report.sections import ReportOptions, counts_text
 
@@ -27,7 +27,7 @@ _EXPLAIN = (
 )
 
 
-def competing_section(data: EvaluationFolder, options: ReportOptions) -> Section | None:
+def competing_section(data: Evaluation, options: ReportOptions) -> Section | None:
     """The block, or None when the outcome has no competing end or none happened."""
     programs = data.programs
     if "competing_events" not in programs or not (programs["competing_events"] > 0).any():

@@ -26,7 +26,7 @@ from casemix.report.page import (
     render_page,
     table_html,
 )
-from casemix.report.plots import _INK, _LIMIT, _figure, _styled
+from casemix.report.plots import INK, LIMIT_INK, new_figure, styled
 from casemix.stats.verdict import verdict_colours
 
 __all__ = [
@@ -55,7 +55,7 @@ REFERENCES = (
 )
 
 
-@_styled
+@styled
 def monitoring_figure(series: pd.DataFrame, state: pd.DataFrame, signals: pd.DataFrame,
                       *, title: str = "") -> Figure:
     """One program's charts: CUSUM (upper above zero, lower mirrored below) and O - E.
@@ -78,7 +78,7 @@ def monitoring_figure(series: pd.DataFrame, state: pd.DataFrame, signals: pd.Dat
     """
     dates = pd.to_datetime(series["date"]).to_numpy()
     limits = state.set_index("chart")["h"]
-    fig = _figure(8.4, 3.0)
+    fig = new_figure(8.4, 3.0)
     cusum, excess = fig.subplots(1, 2)
     for chart, sign, colour, word in (("upper", 1.0, _UP, "raised hazard"),
                                       ("lower", -1.0, _DOWN, "lowered hazard")):
@@ -86,18 +86,18 @@ def monitoring_figure(series: pd.DataFrame, state: pd.DataFrame, signals: pd.Dat
                    lw=1.2, label=f"chart for a {word}", gid=f"cusum-{chart}")
         h = float(limits[chart])
         if np.isfinite(h):
-            cusum.axhline(sign * h, color=_LIMIT, lw=0.9, ls="--", gid=f"limit-{chart}")
+            cusum.axhline(sign * h, color=LIMIT_INK, lw=0.9, ls="--", gid=f"limit-{chart}")
         mine = signals[signals["chart"] == chart]
         cusum.plot(pd.to_datetime(mine["date"]).to_numpy(), sign * mine["g"].to_numpy(),
                    ls="", marker="^" if sign > 0 else "v", ms=6, color=colour,
-                   markeredgecolor=_INK, markeredgewidth=0.5, gid=f"signals-{chart}",
+                   markeredgecolor=INK, markeredgewidth=0.5, gid=f"signals-{chart}",
                    label=f"signal ({word})" if len(mine) else None)
     cusum.axhline(0.0, color="#8a9299", lw=0.6)
     cusum.set_ylabel("CUSUM (dashed: limits)")
     cusum.legend(loc="upper left", bbox_to_anchor=(0.0, -0.16), ncols=2, fontsize=7)
     excess.fill_between(dates, series["band_lower"], series["band_upper"], step="post",
                         color=_BAND, alpha=0.6, lw=0, label="95% band if HR = 1 (pointwise)")
-    excess.step(dates, series["o_minus_e"], where="post", color=_INK, lw=1.2,
+    excess.step(dates, series["o_minus_e"], where="post", color=INK, lw=1.2,
                 label="observed - expected", gid="o-minus-e")
     excess.axhline(0.0, color="#8a9299", lw=0.6)
     excess.set_ylabel("Events: observed - expected")

@@ -22,12 +22,16 @@ from casemix.stats.verdict import verdict_colours
 
 __all__ = [
     "FUNNEL_LEVELS",
+    "INK",
+    "LIMIT_INK",
     "VERDICT_WORDS",
     "at_risk_times",
     "casemix_figure",
     "caterpillar_figure",
     "funnel_figure",
+    "new_figure",
     "numbers_at_risk",
+    "styled",
     "survival_figure",
 ]
 
@@ -42,8 +46,10 @@ VERDICT_WORDS = {
 FUNNEL_LEVELS = (0.95, 0.998)
 """Coverage of the funnel-plot limits drawn (two and three standard errors, roughly)."""
 
-_INK = "#1d2125"
-_LIMIT = "#4d555c"
+INK = "#1d2125"
+"""Colour of text, points and axes in the report's figures."""
+LIMIT_INK = "#4d555c"
+"""Colour of limit lines (funnel limits, control limits)."""
 _EXPECTED = "#009E73"  # Okabe-Ito bluish green: not one of the verdict colours
 _BAR = "#5b6770"
 _STYLE = {
@@ -51,7 +57,7 @@ _STYLE = {
     "axes.titlesize": 9.5,
     "axes.labelsize": 8.5,
     "axes.edgecolor": "#8a9299",
-    "axes.labelcolor": _INK,
+    "axes.labelcolor": INK,
     "axes.spines.top": False,
     "axes.spines.right": False,
     "xtick.color": "#4d555c",
@@ -63,11 +69,12 @@ _STYLE = {
 }
 
 
-def _figure(width: float, height: float) -> Figure:
+def new_figure(width: float, height: float) -> Figure:
+    """A new figure of the report's size (inches), laid out to fit its labels."""
     return Figure(figsize=(width, height), layout="constrained")
 
 
-def _styled(function):
+def styled(function):
     """Run a figure-drawing function under the report's rc style (fonts, colours, spines)."""
 
     @functools.wraps(function)
@@ -82,7 +89,7 @@ def _verdict_handles(verdicts: Sequence[str], palette: dict[str, str]) -> tuple[
     present = [v for v in VERDICT_WORDS if v in set(verdicts)]
     handles = [
         matplotlib.lines.Line2D([], [], ls="", marker="o", ms=6, color=palette[v],
-                                markeredgecolor=_INK, markeredgewidth=0.5)
+                                markeredgecolor=INK, markeredgewidth=0.5)
         for v in present
     ]
     return handles, [VERDICT_WORDS[v] for v in present]
@@ -96,7 +103,7 @@ def _funnel_grid(expected: np.ndarray, log_expected: bool) -> np.ndarray:
     return np.unique(np.concatenate([grid, expected]))
 
 
-@_styled
+@styled
 def funnel_figure(
     programs: pd.DataFrame,
     *,
@@ -128,24 +135,24 @@ def funnel_figure(
     expected = data["expected"].to_numpy(float)
     ratio = data["oe_ratio"].to_numpy(float)
     palette = verdict_colours()
-    fig = _figure(6.4, 4.1)
+    fig = new_figure(6.4, 4.1)
     ax = fig.add_subplot()
     grid = _funnel_grid(expected, log_expected)
     for level, style in zip(levels, itertools.cycle(("--", "-", ":", "-."))):
         lower, upper = funnel_limits(grid, level)
         name = f"{level * 100:g}% limits"
-        ax.plot(grid, upper, style, color=_LIMIT, lw=0.9, label=name, gid=f"limit-{level}-upper")
-        ax.plot(grid, lower, style, color=_LIMIT, lw=0.9, gid=f"limit-{level}-lower")
-    ax.axhline(1.0, color=_INK, lw=0.8, label="O/E = 1 (as expected)")
+        ax.plot(grid, upper, style, color=LIMIT_INK, lw=0.9, label=name, gid=f"limit-{level}-upper")
+        ax.plot(grid, lower, style, color=LIMIT_INK, lw=0.9, gid=f"limit-{level}-lower")
+    ax.axhline(1.0, color=INK, lw=0.8, label="O/E = 1 (as expected)")
     colours = [palette[v] for v in data["verdict"]]
-    ax.scatter(expected, ratio, s=30, c=colours, edgecolors=_INK, linewidths=0.5, zorder=3)
+    ax.scatter(expected, ratio, s=30, c=colours, edgecolors=INK, linewidths=0.5, zorder=3)
     widest_lower, widest_upper = funnel_limits(expected, max(levels))
     outside = (ratio < widest_lower) | (ratio > widest_upper)
     label_all = len(data) <= max_labels
     for code, x, y, out in zip(data["program"], expected, ratio, outside, strict=True):
         if label_all or out:
             ax.annotate(code, (x, y), xytext=(4, 3), textcoords="offset points", fontsize=7,
-                        color=_INK)
+                        color=INK)
     if log_expected:
         ax.set_xscale("log")
         ax.set_xlim(grid[0], grid[-1])
@@ -164,15 +171,15 @@ def funnel_figure(
 
 def _interval_panel(ax, y, centre, lower, upper, colours, right_edge: float, name: str) -> None:
     clipped = np.asarray(upper, float) > right_edge
-    ax.hlines(y, lower, np.minimum(upper, right_edge), color=_LIMIT, lw=1.2)
+    ax.hlines(y, lower, np.minimum(upper, right_edge), color=LIMIT_INK, lw=1.2)
     ax.plot(np.full(clipped.sum(), right_edge), y[clipped], ls="", marker=">", ms=4,
-            color=_LIMIT, gid=f"clipped-{name}")
-    ax.scatter(centre, y, s=26, c=colours, edgecolors=_INK, linewidths=0.5, zorder=3)
-    ax.axvline(1.0, color=_INK, lw=0.8)
+            color=LIMIT_INK, gid=f"clipped-{name}")
+    ax.scatter(centre, y, s=26, c=colours, edgecolors=INK, linewidths=0.5, zorder=3)
+    ax.axvline(1.0, color=INK, lw=0.8)
     ax.grid(True, axis="x")
 
 
-@_styled
+@styled
 def caterpillar_figure(
     programs: pd.DataFrame, *, credible_level: float = 0.95, max_ratio: float = 3.0
 ) -> Figure:
@@ -200,7 +207,7 @@ def caterpillar_figure(
     colours = [palette[v] for v in data["verdict"]]
     y = np.arange(len(data))[::-1]
     edge = min(float(np.nanmax(np.r_[data["hr_upper"], data["oe_upper"], 1.5])), max_ratio)
-    fig = _figure(6.4, 1.5 + 0.2 * len(data))
+    fig = new_figure(6.4, 1.5 + 0.2 * len(data))
     left, right = fig.subplots(1, 2, sharey=True, sharex=True)
     _interval_panel(left, y, data["hr_mean"], data["hr_lower"], data["hr_upper"], colours, edge,
                     "hr")
@@ -253,7 +260,7 @@ def _with_origin(curve: pd.DataFrame) -> pd.DataFrame:
     return pd.concat([origin, curve[list(origin.columns)]], ignore_index=True)
 
 
-@_styled
+@styled
 def survival_figure(
     curve: pd.DataFrame,
     *,
@@ -282,11 +289,11 @@ def survival_figure(
     matplotlib.figure.Figure
     """
     data = _with_origin(curve)
-    fig = _figure(4.6, 3.7)
+    fig = new_figure(4.6, 3.7)
     ax, row = fig.subplots(2, 1, sharex=True, height_ratios=[6, 1])
     ax.fill_between(data["time"], data["observed_lower"], data["observed_upper"], step="post",
                     color="#c9ced3", alpha=0.6, lw=0, label="95% interval (observed)")
-    ax.step(data["time"], data["observed"], where="post", color=_INK, lw=1.4,
+    ax.step(data["time"], data["observed"], where="post", color=INK, lw=1.4,
             label="observed (Kaplan-Meier)", gid="observed")
     ax.step(data["time"], data["expected"], where="post", color=_EXPECTED, lw=1.4, ls="--",
             label="expected for these recipients", gid="expected")
@@ -305,10 +312,10 @@ def survival_figure(
     ax.set_xlabel("Days since transplant")
     row.axis("off")
     row.set_ylim(0, 1)
-    row.text(0.0, 0.95, "Number at risk", transform=row.transAxes, fontsize=7.5, color=_LIMIT,
+    row.text(0.0, 0.95, "Number at risk", transform=row.transAxes, fontsize=7.5, color=LIMIT_INK,
              va="top")
     for t, text in zip(times, at_risk, strict=True):
-        row.text(t, 0.2, text, ha="center", va="center", fontsize=7.5, color=_INK)
+        row.text(t, 0.2, text, ha="center", va="center", fontsize=7.5, color=INK)
     return fig
 
 
@@ -330,7 +337,7 @@ def _ratio_ticks(span: float) -> list[float]:
     return [float(np.exp(-span)), 1.0, float(np.exp(span))]
 
 
-@_styled
+@styled
 def casemix_figure(groups: pd.DataFrame, *, title: str = "") -> Figure:
     """Horizontal bars of case-mix contributions on the log scale, one per covariate group.
 
@@ -355,7 +362,7 @@ def casemix_figure(groups: pd.DataFrame, *, title: str = "") -> Figure:
     labels = [("all groups together" if g == "total" else g.replace("_", " "))
               for g in rows["group"]]
     colours = ["#2a3238" if g == "total" else _BAR for g in rows["group"]]
-    fig = _figure(4.6, 0.9 + 0.24 * len(rows))
+    fig = new_figure(4.6, 0.9 + 0.24 * len(rows))
     ax = fig.add_subplot()
     y = np.arange(len(rows))[::-1]
     factor = np.exp(rows["contribution"].to_numpy(float))
@@ -363,7 +370,7 @@ def casemix_figure(groups: pd.DataFrame, *, title: str = "") -> Figure:
     for yy, f in zip(y, factor, strict=True):
         ax.annotate(f"×{f:.2f}", (f, yy), xytext=(3 if f >= 1 else -3, 0),
                     textcoords="offset points", ha="left" if f >= 1 else "right",
-                    va="center", fontsize=7, color=_INK)
+                    va="center", fontsize=7, color=INK)
     ax.set_xscale("log")
     # Room on both sides for the factor labels at the bar ends.
     span = max(float(np.nanmax(np.abs(rows["contribution"]), initial=0.0)), np.log(1.1)) * 1.35
@@ -372,7 +379,7 @@ def casemix_figure(groups: pd.DataFrame, *, title: str = "") -> Figure:
     ax.xaxis.set_major_locator(FixedLocator(ticks))
     ax.xaxis.set_minor_locator(NullLocator())
     ax.set_xticklabels([f"{t:g}" for t in ticks])
-    ax.axvline(1.0, color=_INK, lw=0.8)
+    ax.axvline(1.0, color=INK, lw=0.8)
     ax.set_yticks(y, labels=labels)
     ax.set_xlabel("Factor on expected events (log scale; 1 = no effect)")
     ax.grid(True, axis="x")

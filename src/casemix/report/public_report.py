@@ -12,9 +12,9 @@ import pandas as pd
 from markupsafe import Markup
 
 from casemix.errors import plural
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.build import report_page
 from casemix.report.disclosure import WITHHELD, PublicRelease
-from casemix.report.folder import EvaluationFolder
 from casemix.report.page import MISSING, Section, figure_svg, table_html
 from casemix.report.plots import (
     VERDICT_WORDS,
@@ -33,7 +33,7 @@ from casemix.report.sections import (
     verdict_html,
     what_if_text,
 )
-from casemix.stats.verdict import verdict_colours
+from casemix.stats.verdict import rules_from_dict, verdict_colours
 
 __all__ = ["public_folder", "render_public_report"]
 
@@ -43,11 +43,13 @@ _PLACEHOLDER_COLUMNS = {
 }
 
 
-def public_folder(release: PublicRelease) -> EvaluationFolder:
-    """The release as an EvaluationFolder with no recipient-level rows (for shared sections)."""
+def public_folder(release: PublicRelease) -> Evaluation:
+    """The release as an Evaluation with no recipient-level rows (for shared sections).
+
+    Its prior is None: a release publishes the prior's summary only.
+    """
     tables = release.tables
-    return EvaluationFolder(
-        path=None,
+    return Evaluation(
         programs=release.programs,
         recipients=pd.DataFrame(columns=_PLACEHOLDER_COLUMNS["recipients"]),
         exclusions=pd.DataFrame(columns=_PLACEHOLDER_COLUMNS["exclusions"]),
@@ -55,6 +57,9 @@ def public_folder(release: PublicRelease) -> EvaluationFolder:
         casemix=tables["casemix.csv"],
         curves=tables["curves.csv"],
         coefficients=tables["coefficients.csv"],
+        out_of_range=tables.get("out_of_range.csv"),
+        prior=None,
+        rules=rules_from_dict(release.run["rules"], source="the public run.json"),
         run=release.run,
     )
 

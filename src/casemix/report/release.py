@@ -10,8 +10,8 @@ from pathlib import Path
 
 from casemix._io import atomic_write_text, write_csv, write_json
 from casemix.errors import InputError
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.disclosure import make_release
-from casemix.report.folder import read_evaluation_folder
 from casemix.report.public_report import render_public_report
 
 __all__ = ["PUBLIC_FOLDER", "write_public_release"]
@@ -57,7 +57,7 @@ def write_public_release(folder: str | Path, n: int, out: str | Path | None = No
     folder = Path(folder)
     target = folder / PUBLIC_FOLDER if out is None else Path(out)
     _check_target(folder, target)
-    release = make_release(read_evaluation_folder(folder), n)
+    release = make_release(Evaluation.load(folder), n)
     for name, table in release.tables.items():
         write_csv(target / name, table)
     write_csv(target / "withheld.csv", release.withheld)

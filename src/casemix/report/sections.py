@@ -1,4 +1,4 @@
-"""The parts of the evaluation report, each built from the evaluation folder as one Section.
+"""The parts of the evaluation report, each built from an Evaluation as one Section.
 
 Every function returns a :class:`~casemix.report.page.Section` whose HTML is made of escaped
 fragments only. Counts go through :func:`counts_text` so that small-count suppression applies
@@ -7,16 +7,14 @@ everywhere a count is shown.
 
 from __future__ import annotations
 
-import json
 from collections.abc import Sequence
 from dataclasses import dataclass
-from pathlib import Path
 
 import pandas as pd
 from markupsafe import Markup
 
-from casemix.errors import InputError, plural
-from casemix.report.folder import EvaluationFolder
+from casemix.errors import plural
+from casemix.evaluation.evaluate import Evaluation
 from casemix.report.page import MISSING, Section, anchor_for, facts_html, figure_svg, table_html
 from casemix.report.plots import (
     FUNNEL_LEVELS,
@@ -178,7 +176,7 @@ def _inputs_frame(inputs: object) -> pd.DataFrame:
     return frame.reindex(columns=[c for c in ("input", "path", "sha256") if c in frame])
 
 
-def evaluated_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def evaluated_section(data: Evaluation, options: ReportOptions) -> Section:
     """Outcome, horizon, window, cut-off, reference model, prior, rules and record counts."""
     run = data.run
     model, prior, counts = run["model"], run["prior"], run["counts"]
@@ -227,7 +225,7 @@ def _survival_cell(row: pd.Series, column: str) -> str:
     return _interval(row[column], lower, upper, 3)
 
 
-def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFrame:
+def _glance_frame(data: Evaluation, options: ReportOptions) -> pd.DataFrame:
     programs = data.programs
     return pd.DataFrame({
         "program": programs["program"].to_numpy(object),
@@ -246,7 +244,7 @@ def _glance_frame(data: EvaluationFolder, options: ReportOptions) -> pd.DataFram
     })
 
 
-def _glance_html(data: EvaluationFolder) -> dict[str, list[Markup]]:
+def _glance_html(data: Evaluation) -> dict[str, list[Markup]]:
     """The program links and verdict chips of the glance table, kept out of the frame."""
     palette = verdict_colours()
     codes = data.programs["program"]
@@ -274,7 +272,7 @@ def glance_headers(run: dict) -> dict[str, str]:
     }
 
 
-def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def overview_section(data: Evaluation, options: ReportOptions) -> Section:
     """The program table: verdict in words with its colour, O, E, O/E, HR and survival."""
     headers = glance_headers(data.run)
     table = table_html(_glance_frame(data, options), headers=headers,
@@ -294,7 +292,7 @@ def overview_section(data: EvaluationFolder, options: ReportOptions) -> Section:
 # -- 4. All programs on one scale ----------------------------------------------------------
 
 
-def scale_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def scale_section(data: Evaluation, options: ReportOptions) -> Section:
     """Funnel plot and caterpillar plot of all programs."""
     programs = data.programs
     no_e = programs.loc[programs["expected"] <= 0, "program"].tolist()
@@ -405,13 +403,13 @@ def reach_text(row: pd.Series) -> str:
     return "; ".join(part.replace(" ", "\u00a0") for part in parts)
 
 
-def _at_risk_row(data: EvaluationFolder, code: str, options: ReportOptions) -> list[str]:
+def _at_risk_row(data: Evaluation, code: str, options: ReportOptions) -> list[str]:
     times = data.recipients.loc[data.recipients["program"] == code, "time"].to_numpy(float)
     counts = numbers_at_risk(times, at_risk_times(data.run["horizon_days"]))
     return counts_text(counts, options)
 
 
-def _program_figures(data: EvaluationFolder, code: str, options: ReportOptions) -> list:
+def _program_figures(data: Evaluation, code: str, options: ReportOptions) -> list:
     horizon = data.run["horizon_days"]
     curve = data.curves[data.curves["program"] == code]
     groups = data.casemix[data.casemix["program"] == code]
@@ -438,7 +436,7 @@ def _program_figures(data: EvaluationFolder, code: str, options: ReportOptions) 
     return blocks
 
 
-def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
+def _program_block(data: Evaluation, position: int, row: pd.Series,
                    options: ReportOptions, palette: dict[str, str]) -> Markup:
     code = row["program"]
     facts = Markup("<p>{} · {} {} · observed {} · expected {:.1f} · O/E {} · hazard "
@@ -460,7 +458,7 @@ def _program_block(data: EvaluationFolder, position: int, row: pd.Series,
         Markup("").join(_program_figures(data, code, options)))
 
 
-def each_program_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def each_program_section(data: Evaluation, options: ReportOptions) -> Section:
     """One sub-section per program (by code): survival curves, case mix, what-if distances."""
     palette = verdict_colours()
     codes = data.programs["program"]
@@ -475,7 +473,7 @@ def each_program_section(data: EvaluationFolder, options: ReportOptions) -> Sect
 # -- 6. Data quality -----------------------------------------------------------------------
 
 
-def data_quality_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def data_quality_section(data: Evaluation, options: ReportOptions) -> Section:
     """Exclusions by reason, follow-up completeness and loss to follow-up per program."""
     reasons = exclusions_by_reason(data.exclusions)
     if len(reasons):
@@ -510,7 +508,7 @@ _CORRECTION_WORDS = {
 }
 
 
-def _corrections_html(data: EvaluationFolder, options: ReportOptions) -> Markup:
+def _corrections_html(data: Evaluation, options: ReportOptions) -> Markup:
     """Corrections of kept records per program and kind (counts suppressed as elsewhere)."""
     if data.corrections is None:
         return Markup("<p>Not recorded: this folder was written by an older version "
@@ -534,7 +532,7 @@ def _corrections_html(data: EvaluationFolder, options: ReportOptions) -> Markup:
 # -- 7. The reference model ----------------------------------------------------------------
 
 
-def model_section(data: EvaluationFolder, options: ReportOptions) -> Section:
+def model_section(data: Evaluation, options: ReportOptions) -> Section:
     """Coefficients with hazard ratios and confidence limits, and the model's fit facts."""
     model = data.run["model"]
     facts = facts_html([
@@ -564,71 +562,27 @@ def _p_value(p: float) -> str:
 # -- 8. Audit ------------------------------------------------------------------------------
 
 
-def _check_audit_folder(folder: Path, fingerprint: str | None) -> None:
-    absent = [n for n in ("findings.json", "audit.json") if not (folder / n).is_file()]
-    if absent:
-        raise InputError(
-            f"{folder}: not a complete audit folder ({' and '.join(absent)} missing), so an "
-            "empty list of findings would read like a clean audit. Pass the folder "
-            "`casemix audit ... --out DIR` wrote, or run the audit again."
-        )
-    try:
-        facts = json.loads((folder / "audit.json").read_text(encoding="utf-8"))
-    except (json.JSONDecodeError, UnicodeDecodeError) as err:
-        raise InputError(f"{folder / 'audit.json'}: not valid JSON ({err}); run the audit "
-                         "again.") from err
-    theirs = facts.get("model_fingerprint") if isinstance(facts, dict) else None
-    if fingerprint is not None and theirs != fingerprint:
-        raise InputError(
-            f"{folder}: the audit is of another reference model (fingerprint "
-            f"{str(theirs)[:12]}..., the evaluation's is {fingerprint[:12]}...); audit the "
-            "model the evaluation used, or leave --audit out."
-        )
-
-
-def _findings(folder: Path) -> list[str]:
-    json_path = folder / "findings.json"
-    try:
-        items = json.loads(json_path.read_text(encoding="utf-8"))
-    except json.JSONDecodeError as err:
-        raise InputError(f"{json_path}: not valid JSON ({err}); run the audit again.") from err
-    if not isinstance(items, list):
-        raise InputError(f"{json_path}: must hold a list of findings; run the audit again.")
-    return [i if isinstance(i, str) else "; ".join(f"{k}: {v}" for k, v in i.items())
-            for i in items]
-
-
-def table_section(path: Path) -> Markup:
-    """A titled table of one CSV file (at most AUDIT_ROWS_SHOWN rows, saying so)."""
-    try:
-        frame = pd.read_csv(path)
-    except (pd.errors.ParserError, pd.errors.EmptyDataError, UnicodeDecodeError) as err:
-        raise InputError(f"{path}: cannot be read as CSV ({err}); run the audit again.") from err
+def table_section(name: str, frame: pd.DataFrame) -> Markup:
+    """A titled table of one audit table (at most AUDIT_ROWS_SHOWN rows, saying so)."""
     note = ""
     if len(frame) > AUDIT_ROWS_SHOWN:
         note = Markup('<p class="note">The first {} of {} rows; the rest are in {}.</p>').format(
-            AUDIT_ROWS_SHOWN, len(frame), path.name)
-    title = path.stem.replace("_", " ").capitalize()
+            AUDIT_ROWS_SHOWN, len(frame), f"{name}.csv")
+    title = name.replace("_", " ").capitalize()
     return Markup("<h3>{}</h3>{}{}").format(
         title, Markup(table_html(frame.head(AUDIT_ROWS_SHOWN))), note)
 
 
-def audit_section(folder: str | Path, fingerprint: str | None = None) -> Section:
-    """The audit's findings and every CSV table of its folder, in file-name order.
+def audit_section(audit) -> Section:
+    """The audit's findings and every table, in the order of their file names.
 
-    The folder must hold ``findings.json`` and ``audit.json``; with ``fingerprint`` (the
-    evaluation's model fingerprint), the audit's model must be the same one.
+    ``audit`` is an :class:`~casemix.audit.Audit` (in memory or read back with
+    ``Audit.load``); :func:`casemix.audit.agreement.check_audit` says whether it may be
+    shown beside an evaluation.
     """
-    folder = Path(folder)
-    if not folder.is_dir():
-        raise InputError(f"{folder}: audit folder not found; pass the folder `casemix audit` "
-                         "wrote, or leave it out.")
-    _check_audit_folder(folder, fingerprint)
-    findings = _findings(folder)
     listed = (Markup("<ul>{}</ul>").format(Markup("").join(
-        Markup("<li>{}</li>").format(f) for f in findings))
-        if findings else Markup("<p>The audit listed no findings.</p>"))
-    tables = [table_section(p) for p in sorted(folder.glob("*.csv"))]
+        Markup("<li>{}</li>").format(f) for f in audit.findings))
+        if audit.findings else Markup("<p>The audit listed no findings.</p>"))
+    tables = [table_section(name, audit.tables[name]) for name in sorted(audit.tables)]
     return Section("Statistical audit", _join(Markup("<h3>Findings</h3>"), listed, *tables),
                    anchor="audit")
-

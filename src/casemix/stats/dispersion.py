@@ -45,7 +45,7 @@ ADJUSTMENTS = ("multiplicative", "additive")
 MIN_PROGRAMS = 3
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Overdispersion:
     """Dispersion of program z-scores and its test.
 

@@ -24,7 +24,8 @@ from __future__ import annotations
 
 import math
 import warnings
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, fields
 from typing import Any
 
 import numpy as np
@@ -165,6 +166,34 @@ class Prior:
             "components": [list(c) for c in self.components],
             "hyperprior": self.hyperprior,
         }
+
+    @classmethod
+    def from_dict(cls, values: Mapping[str, Any]) -> Prior:
+        """Rebuild the prior from :meth:`to_dict`'s object (``run.json``'s ``"prior"``).
+
+        The derived entries (``mean``, ``sd``, ``centre``) are recomputed, not read.
+
+        Raises
+        ------
+        InputError
+            A key the prior needs is missing, a value is invalid, or a hierarchical prior
+            lacks its mixture ``components`` (written by versions that did not keep them: the
+            summary gamma alone is not the prior that was used).
+        """
+        if not isinstance(values, Mapping):
+            raise InputError(f"the prior must be an object of keys, got {values!r}.")
+        missing = [k for k in ("shape", "rate", "method") if k not in values]
+        if values.get("method") == "hierarchical" and not values.get("components"):
+            missing.append("components")
+        if missing:
+            raise InputError(f"the prior lacks {', '.join(missing)}.")
+        given = {f.name: values[f.name] for f in fields(cls) if f.name in values}
+        try:
+            given["components"] = tuple(tuple(float(x) for x in c)
+                                        for c in given.get("components") or ())
+            return cls(**given)
+        except (TypeError, ValueError) as err:
+            raise InputError(f"the prior cannot be rebuilt ({err}).") from err
 
 
 def fixed_prior(shape: float, rate: float) -> Prior:

@@ -12,6 +12,13 @@ from __future__ import annotations
 import numpy as np
 from scipy import sparse
 
+__all__ = [
+    "BLOCK_ROWS",
+    "weighted_gram",
+    "weighted_group_sums",
+    "weighted_variance",
+]
+
 BLOCK_ROWS = 65_536
 
 

@@ -25,12 +25,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from casemix.errors import InputError
-from casemix.survival._validate import as_weights
+from casemix.survival.validate import as_weights
 
 __all__ = ["CumulativeIncidence", "cumulative_incidence"]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class CumulativeIncidence:
     """Cumulative incidence of the event of interest, right-continuous, at each distinct time.
 

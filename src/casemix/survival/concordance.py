@@ -29,7 +29,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from casemix.errors import InputError, plural
-from casemix.survival._validate import as_time_event
+from casemix.survival.validate import as_time_event
 
 __all__ = ["Concordance", "concordance"]
 

@@ -29,7 +29,17 @@ from scipy import stats
 
 from casemix.errors import ConvergenceError, ConvergenceWarning, InputError, plural
 from casemix.survival._gram import weighted_gram, weighted_group_sums
-from casemix.survival._validate import as_matrix, as_time_event, as_weights, check_columns
+from casemix.survival.validate import as_matrix, as_time_event, as_weights, check_columns
+
+__all__ = [
+    "DIVERGED_COEF",
+    "DIVERGED_SE",
+    "TIES",
+    "BaselineHazard",
+    "ChiSquareTest",
+    "CoxFit",
+    "fit_cox",
+]
 
 TIES = ("efron", "breslow")
 # A coefficient whose standard error exceeds this many covariate standard deviations' worth
@@ -47,7 +57,7 @@ class ChiSquareTest:
     p_value: float
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class BaselineHazard:
     """Breslow cumulative baseline hazard of one stratum, a right-continuous step function.
 
@@ -90,7 +100,7 @@ class BaselineHazard:
         return np.where(idx >= 0, values, 0.0)
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class CoxFit:
     """The result of :func:`fit_cox`, a snapshot that does not change after it is made.
 
@@ -289,7 +299,7 @@ class _RiskSets:
         return total[1:] - total[self.start_of_group]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class _Likelihood:
     """The log partial likelihood at one beta and the risk-set sums behind it (internal)."""
 

@@ -8,10 +8,15 @@ import numpy as np
 from scipy import stats
 
 from casemix.errors import InputError
-from casemix.survival._validate import as_time_event, as_weights
+from casemix.survival.validate import as_time_event, as_weights
+
+__all__ = [
+    "KaplanMeier",
+    "kaplan_meier",
+]
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class KaplanMeier:
     """A Kaplan-Meier curve, right-continuous, tabulated at every distinct observed time.
 

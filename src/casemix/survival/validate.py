@@ -7,6 +7,13 @@ import numpy as np
 from casemix.errors import InputError, plural
 from casemix.survival._gram import weighted_variance
 
+__all__ = [
+    "as_matrix",
+    "as_time_event",
+    "as_weights",
+    "check_columns",
+]
+
 
 def as_time_event(time, event) -> tuple[np.ndarray, np.ndarray]:
     """Return ``time`` as float64 and ``event`` as int8 after checking both.

@@ -1,7 +1,7 @@
-"""The one place the audit imports its optional reference libraries (statsmodels, lifelines).
+"""The one place casemix imports its optional libraries (statsmodels, lifelines, dask).
 
-They are imported only when a check needs them, so that ``import casemix.audit`` works
-without them; a missing library gives a message that says what to install.
+They are imported only when a check or a scheduler needs them, so that ``import casemix``
+works without them; a missing library gives a message that says what to install.
 """
 
 from __future__ import annotations
