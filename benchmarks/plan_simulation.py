@@ -60,7 +60,7 @@ Printed (markdown): coverage of the 95% credible intervals per analysis and by b
 expected events, with Monte Carlo standard errors taken between replicates (programs of one
 network share their prior, so their coverages are not independent); for S01 its true hazard
 ratio and how often it is called ``excess`` at each analysis; false flags among the 29
-programs at HR 1 of the null scenario. About 2 s per replicate and scenario on one core.
+programs at HR 1 of the null scenario. About 2.5 s per replicate on a quiet core.
 """
 
 from __future__ import annotations

@@ -30,7 +30,7 @@ def _load():
 
 sim = _load()
 
-REPLICATES = 8  # about 20 s on one quiet core, under 60 s on the shared machine
+REPLICATES = 8  # about 2 s each on a quiet core; under 60 s on the shared machine
 Z = 3.0  # Monte Carlo tolerance: estimates within 3 standard errors of the target band
 LOW, HIGH = 0.93, 0.97  # the acceptance band for 95% intervals
 
