@@ -87,8 +87,12 @@ from casemix.stats.verdict import Rules
 __all__ = [
     "ANALYSES",
     "BANDS",
+    "CHANGE_DAY",
     "CUTOFF",
+    "HAZARDS",
     "PLANTED",
+    "PROGRAMS",
+    "RAISE",
     "REFERENCE_CUTOFF",
     "REFERENCE_WINDOW",
     "SCENARIOS",
@@ -100,6 +104,7 @@ __all__ = [
     "false_flag_table",
     "generate",
     "planted_table",
+    "relative_risk",
     "run_replicate",
     "simulate",
     "simulation_spec",
@@ -230,14 +235,15 @@ def _recipients(rng: np.random.Generator, programs: np.ndarray, start: dt.date,
     })
 
 
-def _risk(frame: pd.DataFrame) -> np.ndarray:
+def relative_risk(frame: pd.DataFrame) -> np.ndarray:
+    """exp(lp) of each recipient under the true covariate effects ``BETA``."""
     return np.exp(sum(BETA[k] * (frame[k].to_numpy() - CENTRE[k]) for k in BETA))
 
 
 def _outcomes(rng: np.random.Generator, frame: pd.DataFrame, cutoff: dt.date, u: np.ndarray,
               raise_: np.ndarray) -> pd.DataFrame:
     """Add graft-loss, death and last-seen dates, as far as they are known at the cut-off."""
-    graft, death = HAZARDS.draw(rng, _risk(frame), u, raise_)
+    graft, death = HAZARDS.draw(rng, relative_risk(frame), u, raise_)
     tx = frame["transplant_date"].to_numpy().astype("datetime64[D]")
     cut = np.datetime64(cutoff, "D")
     death_day = tx + np.ceil(death).astype("timedelta64[D]")
@@ -294,7 +300,7 @@ def generate(rng: np.random.Generator, *, spread: float, raise_: float = RAISE) 
         "program": cohort["program"],
         "transplant_date": cohort["transplant_date"],
         "entry_days": (pd.Timestamp(CUTOFF) - cohort["transplant_date"]).dt.days.to_numpy(),
-        "risk": _risk(cohort),
+        "risk": relative_risk(cohort),
         "u": u[index],
         "raise_": factor[index],
     })

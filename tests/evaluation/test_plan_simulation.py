@@ -85,7 +85,7 @@ def test_generator_follows_the_known_reference_hazards():
     network = sim.generate(np.random.default_rng(7), spread=0.2)
     ref = network.reference
     tx = ref["transplant_date"]
-    risk = sim._risk(ref)
+    risk = sim.relative_risk(ref)
     for outcome, dates in (("death", ["death_date"]),
                            ("graft_failure", ["graft_loss_date", "death_date"])):
         first = ref[dates].min(axis=1)
