@@ -2,7 +2,7 @@
 
 Run from the repository root::
 
-    python benchmarks/plan_simulation.py [--replicates N] [--workers W]
+    python benchmarks/plan_simulation.py [--replicates N] [--workers W] [--raise F]
 
 Every replicate invents a network of 30 programs and runs the six analyses of a plan
 (graft failure including death, and death; at 30, 365 and 1095 days) through today's public
@@ -49,9 +49,10 @@ follow-up c_i = min(horizon, cut-off - transplant date):
 
 where R_i is recipient i's true reference cumulative hazard and S_i his or her true survival
 for the outcome (E[number of events] and E[cumulative reference hazard at the follow-up
-time], by the compensator of the counting process). The multiplier is constant on [0, 365)
-and on [365, inf), where S_i' = -u R_i' S_i, so each piece integrates in closed form,
-(S_i(start) - S_i(end)) / u; the test checks this against scipy.integrate.quad. For a
+time], by the compensator of the counting process). The multiplier m is constant on
+[0, 365) (m = u) and on [365, inf) (m = u x factor), where S_i' = -m R_i' S_i, so each piece
+integrates in closed form, (S_i(start) - S_i(end)) / m; the test checks this against
+scipy.integrate.quad. For a
 program with a constant multiplier theta = u exactly. The reference model's expected events
 come from its own fit (estimated on the reference population): its estimation error is
 part of what the simulation measures, as in practice.
