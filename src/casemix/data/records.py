@@ -394,7 +394,7 @@ def _read_csv_pandas(path: Path, spec: Spec) -> pa.Table:
 
 def _text_frame(table: pa.Table) -> pd.DataFrame:
     """Text columns of a table as object columns (missing cells None)."""
-    return pd.DataFrame({name: table[name].to_numpy(zero_copy_only=False)
+    return pd.DataFrame({name: pd.Series(table[name].to_numpy(zero_copy_only=False), dtype=object)
                          for name in table.column_names})
 def _check_header(path: Path, spec: Spec) -> list[str]:
     """Refuse a header naming a column twice, or one written with another separator.
@@ -593,10 +593,12 @@ def _frame(table: pa.Table, parsed: dict[str, np.ndarray], path: Path) -> pd.Dat
         rest = pd.read_parquet(path, columns=others).reset_index(drop=True)
     else:
         rest = _text_frame(table.select(others))
-    columns = {name: parsed[name] if name in parsed else rest[name]
-               for name in table.column_names}
-    # copy=False: the parsed arrays become the frame's columns (no consolidated copy).
-    return pd.DataFrame(columns, index=pd.RangeIndex(table.num_rows), copy=False)
+    index = pd.RangeIndex(table.num_rows)
+    # Each parsed array keeps its dtype (object text stays object under pandas 3) and becomes
+    # the frame's column as it is (copy=False: no consolidated copy).
+    columns = {name: pd.Series(parsed[name], index=index, dtype=parsed[name].dtype, copy=False)
+               if name in parsed else rest[name].set_axis(index) for name in table.column_names}
+    return pd.DataFrame(columns, index=index, copy=False)
 
 
 def _check_duplicates(ids: pa.ChunkedArray, spec: Spec, path: Path) -> None:
@@ -660,8 +662,11 @@ def _parse_dates(
         dates = pd.to_datetime(series.astype(object).map(_one_date), errors="coerce")
         text = series.astype(object).map(lambda v: v if isinstance(v, str) else None)
         dates = dates.fillna(pd.to_datetime(clean_text(text), format=fmt, errors="coerce"))
-    # One unit whatever the source (pandas 3 infers seconds or microseconds per column).
-    dates = dates.dt.normalize().astype("datetime64[ns]")
+    # One unit whatever the source (pandas 3 infers seconds or microseconds per column); a
+    # date outside the nanosecond range is unreadable, as pandas 2 parses it.
+    dates = dates.dt.normalize()
+    dates = dates.where((dates >= pd.Timestamp.min) & (dates <= pd.Timestamp.max))
+    dates = dates.astype("datetime64[ns]")
     return dates, present & dates.isna(), present
 
 
