@@ -602,7 +602,8 @@ def _frame(table: pa.Table, parsed: dict[str, np.ndarray], path: Path) -> pd.Dat
 
 
 def _check_duplicates(ids: pa.ChunkedArray, spec: Spec, path: Path) -> None:
-    if pc.count_distinct(ids).as_py() == pc.count(ids).as_py():
+    distinct = len(pc.unique(ids)) - (ids.null_count > 0)  # unique() counts null once
+    if distinct == len(ids) - ids.null_count:
         return
     ids = pd.Series(ids.to_numpy(zero_copy_only=False), dtype=object)
     dup = ids.notna() & ids.duplicated(keep=False)
