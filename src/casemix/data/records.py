@@ -21,6 +21,7 @@ from __future__ import annotations
 
 import csv
 import datetime as dt
+import mmap
 import re
 import warnings
 from collections.abc import Callable, Iterable
@@ -364,16 +365,19 @@ def _read_csv_arrow(path: Path, spec: Spec, header: list[str]) -> pa.Table | Non
         )
     except pa.ArrowException:
         return None
+    with path.open("rb") as handle, mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as data:
+        quoted = data.find(b'"') >= 0  # without a quote no cell can hold a line break
     columns = []
     for column in table.columns:
         if pc.any(pc.starts_with(column, " ")).as_py():  # skipinitialspace
-            if pc.any(pc.match_substring_regex(column, '^ +"')).as_py():
+            if quoted and pc.any(pc.match_substring_regex(column, '^ +"')).as_py():
                 return None
             column = pc.utf8_ltrim(column, characters=" ")
         columns.append(column)
     table = pa.table(columns, names=[name.lstrip(" ") for name in header])
-    breaks = [c for c in spec.required_columns if c in table.column_names
-              and any(pc.any(pc.match_substring(table[c], mark)).as_py() for mark in "\r\n")]
+    breaks = quoted and any(
+        pc.any(pc.match_substring(table[c], mark)).as_py()
+        for c in spec.required_columns if c in table.column_names for mark in "\r\n")
     if breaks:
         _check_line_breaks(_text_frame(table), spec, path)
     return table
