@@ -13,8 +13,12 @@ file is checked against its lines, and every cell a missing-value token emptied 
 Row numbers: ``Records.frame`` keeps the 0-based position of each record in the file as its
 index; ``row`` in ``exclusions`` and ``corrections`` and the row numbers in messages are
 1-based *data* row numbers (the first record under the header is row 1, which a spreadsheet
-shows on line 2). Parsing is done with pandas (``read_csv``, ``read_parquet``,
-``to_datetime``, ``to_numeric``); only the bookkeeping is written here.
+shows on line 2). Reading is done with Arrow (its CSV reader, every column as text, with
+pandas' ``read_csv`` for the files it refuses or could read otherwise; Parquet columns as
+stored, typed) and Arrow compute functions (stripping, missing-value tokens, duplicate
+ids); cells are parsed with pandas (``to_datetime``, ``to_numeric``), each distinct cell of
+a text or date column once, the result taken back to its rows. Only the bookkeeping is
+written here.
 """
 
 from __future__ import annotations
