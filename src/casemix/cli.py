@@ -210,12 +210,15 @@ def check(
     from casemix._io import write_csv
     from casemix.data.check import check_extract
     from casemix.data.records import read_records
-    from casemix.model.reference import ReferenceModel
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
     with _guarded():
-        reference = None if model is None else ReferenceModel.load(model)
+        reference = None
+        if model is not None:  # the model code (and scipy.stats) only when a model is given
+            from casemix.model.reference import ReferenceModel
+
+            reference = ReferenceModel.load(model)
         data = read_records(records, spec, cutoff=cut)
         result = check_extract(data, window=window, model=reference)
         if out_dir is not None:

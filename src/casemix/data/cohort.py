@@ -207,7 +207,9 @@ def build_cohort(
                 "adds; rename that column in the file."
             )
     exclusions, kept = apply_window(records, stamp, (start, end))
-    out = frame.loc[kept].copy()
+    # Every record kept (a reference population): a shallow copy, the columns added below
+    # go to it alone.
+    out = frame.copy(deep=False) if len(kept) == len(frame) else frame.loc[kept].copy()
     fu = follow_up(
         out[spec.columns.transplant_date],
         out[spec.columns.last_seen],
@@ -332,7 +334,6 @@ def apply_window(records: Records, cutoff: object,
 def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timestamp | None,
                     end: pd.Timestamp | None) -> pd.DataFrame:
     """Reason text and kind for recipients outside the cut-off or window (missing otherwise)."""
-    day = tx.dt.strftime("%Y-%m-%d")
     reasons = pd.DataFrame({"reason": None, "kind": None}, index=tx.index, dtype=object)
     checks = [] if cutoff is None else [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
                                          "transplanted after the cut-off")]
@@ -344,7 +345,8 @@ def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timest
                        "transplanted outside the cohort window"))
     for mask, text, kind in checks:
         mask = mask & reasons["reason"].isna()
-        reasons.loc[mask, "reason"] = ("transplanted " + day[mask] + text).to_numpy(dtype=object)
+        day = tx[mask].dt.strftime("%Y-%m-%d")  # only the few excluded: strftime is slow
+        reasons.loc[mask, "reason"] = ("transplanted " + day + text).to_numpy(dtype=object)
         reasons.loc[mask, "kind"] = kind
     return reasons
 

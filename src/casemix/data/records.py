@@ -13,14 +13,19 @@ file is checked against its lines, and every cell a missing-value token emptied 
 Row numbers: ``Records.frame`` keeps the 0-based position of each record in the file as its
 index; ``row`` in ``exclusions`` and ``corrections`` and the row numbers in messages are
 1-based *data* row numbers (the first record under the header is row 1, which a spreadsheet
-shows on line 2). Parsing is done with pandas (``read_csv``, ``read_parquet``,
-``to_datetime``, ``to_numeric``); only the bookkeeping is written here.
+shows on line 2). Reading is done with Arrow (its CSV reader, every column as text, with
+pandas' ``read_csv`` for the files it refuses or could read otherwise; Parquet columns as
+stored, typed) and Arrow compute functions (stripping, missing-value tokens, duplicate
+ids); cells are parsed with pandas (``to_datetime``, ``to_numeric``), each distinct cell of
+a text or date column once, the result taken back to its rows. Only the bookkeeping is
+written here.
 """
 
 from __future__ import annotations
 
 import csv
 import datetime as dt
+import mmap
 import re
 import warnings
 from collections.abc import Callable, Iterable
@@ -29,6 +34,8 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
 
 from casemix.data.spec import Covariate, Spec, closest, load_spec
 from casemix.errors import DataWarning, InputError, plural
@@ -58,6 +65,7 @@ _BINARY_TEXT = {
 _WRONG_TYPE_SHARE = 0.5
 _WRONG_TYPE_MIN = 3
 _SHOW = 5  # how many examples a message shows
+_DISTINCT_FROM = 1000  # clean_text works per distinct value on longer columns of text
 
 
 @dataclass(frozen=True, repr=False, eq=False)
@@ -216,19 +224,22 @@ def read_records(
     path = Path(path)
     stamp = to_timestamp(cutoff if cutoff is not None else spec.analysis.cutoff, "cut-off")
     day = to_timestamp(today if today is not None else dt.date.today(), "today")
-    raw, emptied = _read_table(path, spec)
-    _check_columns(raw, spec, path)
-    frame = raw.copy()
-    frame.index = pd.RangeIndex(len(raw))
-    ledger = _Ledger(len(frame))
-    for column in (spec.columns.recipient, spec.columns.program, spec.strata):
-        if column is not None:
-            frame[column] = clean_text(frame[column])
-    frame[spec.columns.program] = _program_codes(frame[spec.columns.program], spec, path)
-    _check_duplicates(frame, spec, path)
-    _parse_date_columns(frame, spec, path, ledger)
+    table, emptied = _read_table(path, spec)
+    _check_columns(table.column_names, spec, path)
+    ledger = _Ledger(table.num_rows)
+    ids = _id_text(table[spec.columns.recipient])
+    parsed = {spec.columns.recipient: ids.to_numpy(zero_copy_only=False)}
+    parsed[spec.columns.program] = _by_distinct(
+        table[spec.columns.program], lambda s: _program_codes(clean_text(s), spec, path))
+    if spec.strata is not None:
+        parsed[spec.strata] = _by_distinct(table[spec.strata], clean_text)
+    _check_duplicates(ids, spec, path)
+    _parse_date_columns(table, parsed, spec, path, ledger)
     for cov in spec.covariates:
-        _parse_covariate(frame, cov, path, ledger, spec.decimal)
+        _parse_covariate(table, parsed, cov, path, ledger, spec.decimal)
+    frame = _frame(table, parsed, path)
+    del table, parsed, ids
+    pa.default_memory_pool().release_unused()  # the file's buffers are not needed any more
     _check_records(frame, spec, stamp, ledger, day)
     excluded = ledger.excluded
     exclusions = _exclusion_frame(frame, spec, ledger, excluded)
@@ -277,20 +288,19 @@ def count_by_kind(table: pd.DataFrame, key: str = "reason") -> pd.DataFrame:
                               ignore_index=True)
 
 
-def _read_table(path: Path, spec: Spec) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _read_table(path: Path, spec: Spec) -> tuple[pa.Table, pd.DataFrame]:
+    """The file as an Arrow table (CSV: every column as text), and the cells emptied."""
     if not path.is_file():
         raise InputError(f"records file '{path}' does not exist; check the path.")
     suffix = path.suffix.lower()
     try:
         if suffix in _PARQUET_SUFFIXES:
-            raw = pd.read_parquet(path)
+            table = _read_parquet(path)
         elif suffix in _CSV_SUFFIXES:
-            _check_header(path, spec)
-            # Everything as text, and no missing-value guessing: types are coerced column by
-            # column so that a bad cell becomes an exclusion with a reason rather than a
-            # silently changed dtype, and the spec's missing-value tokens are applied here.
-            raw = pd.read_csv(path, dtype=str, encoding="utf-8-sig", skipinitialspace=True,
-                              sep=spec.delimiter, keep_default_na=False, na_filter=False)
+            header = _check_header(path, spec)
+            table = _read_csv_arrow(path, spec, header)
+            if table is None:
+                table = _read_csv_pandas(path, spec)
         else:
             raise InputError(
                 f"records file '{path}' has suffix '{path.suffix}'; casemix reads .csv and "
@@ -318,21 +328,92 @@ def _read_table(path: Path, spec: Spec) -> tuple[pd.DataFrame, pd.DataFrame]:
             f"records file '{path}' cannot be read ({type(exc).__name__}: {exc}); save it "
             "as UTF-8 CSV with a header row, or as Parquet."
         ) from None
-    if len(raw) == 0:
+    if table.num_rows == 0:
         raise InputError(f"records file '{path}' has no data rows (only a header).")
     if suffix in _PARQUET_SUFFIXES:
-        return raw, _emptied_frame([])
-    _check_line_breaks(raw, spec, path)
-    return _apply_missing_tokens(raw, spec.missing_tokens)
+        return table, _emptied_frame([])
+    return _apply_missing_tokens(table, spec.missing_tokens)
 
 
-def _check_header(path: Path, spec: Spec) -> None:
-    """Refuse a header naming a column twice, or one written with another separator."""
+def _read_parquet(path: Path) -> pa.Table:
+    """The Parquet file's columns as stored (typed), without a stored pandas index."""
+    import pyarrow.parquet as pq
+
+    table = pq.read_table(path)
+    index = (table.schema.pandas_metadata or {}).get("index_columns", [])
+    return table.drop_columns([c for c in index if isinstance(c, str)])
+
+
+def _read_csv_arrow(path: Path, spec: Spec, header: list[str]) -> pa.Table | None:
+    """Read a CSV file with Arrow's reader, every column as text, no missing-value guessing.
+
+    Gives the cells pandas' reader gives with ``dtype=str, skipinitialspace=True,
+    na_filter=False``, or None where the two could differ (a quote in the header, a quote
+    after leading spaces, a file Arrow refuses: ragged rows, bad UTF-8, an unclosed quote);
+    the caller then reads the file with pandas, whose messages name the problem.
+    """
+    import pyarrow.csv as pacsv
+
+    if not header or any('"' in name for name in header):
+        return None
+    fields = [f"f{i}" for i in range(len(header))]
+    try:
+        table = pacsv.read_csv(
+            path,
+            read_options=pacsv.ReadOptions(skip_rows=1, column_names=fields),
+            parse_options=pacsv.ParseOptions(delimiter=spec.delimiter, newlines_in_values=True),
+            convert_options=pacsv.ConvertOptions(
+                column_types=dict.fromkeys(fields, pa.string()), strings_can_be_null=False,
+                quoted_strings_can_be_null=False, null_values=[],
+            ),
+        )
+    except pa.ArrowException:
+        return None
+    with path.open("rb") as handle, mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as data:
+        quoted = data.find(b'"') >= 0  # without a quote no cell can hold a line break
+    columns = []
+    for column in table.columns:
+        if pc.any(pc.starts_with(column, " ")).as_py():  # skipinitialspace
+            if quoted and pc.any(pc.match_substring_regex(column, '^ +"')).as_py():
+                return None
+            column = pc.utf8_ltrim(column, characters=" ")
+        columns.append(column)
+    table = pa.table(columns, names=[name.lstrip(" ") for name in header])
+    breaks = quoted and any(
+        pc.any(pc.match_substring(table[c], mark)).as_py()
+        for c in spec.required_columns if c in table.column_names for mark in "\r\n")
+    if breaks:
+        _check_line_breaks(_text_frame(table), spec, path)
+    return table
+
+
+def _read_csv_pandas(path: Path, spec: Spec) -> pa.Table:
+    """Read a CSV file with pandas (the files Arrow's reader refuses or could read otherwise)."""
+    # Everything as text, and no missing-value guessing: types are coerced column by column
+    # so that a bad cell becomes an exclusion with a reason rather than a silently changed
+    # dtype, and the spec's missing-value tokens are applied afterwards.
+    raw = pd.read_csv(path, dtype=str, encoding="utf-8-sig", skipinitialspace=True,
+                      sep=spec.delimiter, keep_default_na=False, na_filter=False)
+    if len(raw):
+        _check_line_breaks(raw, spec, path)
+    return pa.table({str(c): pa.array(raw[c].to_numpy(dtype=object), type=pa.string(),
+                                      from_pandas=True) for c in raw.columns})
+
+
+def _text_frame(table: pa.Table) -> pd.DataFrame:
+    """Text columns of a table as object columns (missing cells None)."""
+    return pd.DataFrame({name: pd.Series(table[name].to_numpy(zero_copy_only=False), dtype=object)
+                         for name in table.column_names})
+def _check_header(path: Path, spec: Spec) -> list[str]:
+    """Refuse a header naming a column twice, or one written with another separator.
+
+    Returns the header's fields as written (empty when it cannot be read).
+    """
     try:
         with path.open(encoding="utf-8-sig", newline="") as handle:
             header = next(csv.reader(handle, delimiter=spec.delimiter), [])
     except (OSError, UnicodeDecodeError):
-        return  # read_csv reports it with its own message
+        return []  # read_csv reports it with its own message
     names = [h.strip() for h in header]
     twice = sorted({n for n in names if names.count(n) > 1})
     if twice:
@@ -353,6 +434,7 @@ def _check_header(path: Path, spec: Spec) -> None:
                     f"not '{spec.delimiter}'. Set delimiter = \"{setting}\" in the [records] "
                     "table of the spec (and decimal = \",\" if numbers use a decimal comma)."
                 )
+    return header
 
 
 def _check_line_breaks(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
@@ -382,20 +464,24 @@ def _check_line_breaks(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
     )
 
 
-def _apply_missing_tokens(raw: pd.DataFrame,
-                          tokens: tuple[str, ...]) -> tuple[pd.DataFrame, pd.DataFrame]:
+def _apply_missing_tokens(table: pa.Table,
+                          tokens: tuple[str, ...]) -> tuple[pa.Table, pd.DataFrame]:
     """Empty the cells whose stripped text is a token; count them per token and column."""
     counts = []
-    out = {}
-    for column in raw.columns:
-        text = raw[column].str.strip()
-        hit = text.isin(tokens)
-        if hit.any():
-            for token, n in text[hit].value_counts(sort=False).items():
-                if token != "":  # an empty cell is simply empty
-                    counts.append((token, column, int(n)))
-        out[column] = raw[column].astype(object).mask(hit.to_numpy(), None)
-    return pd.DataFrame(out, index=raw.index), _emptied_frame(counts)
+    value_set = pa.array(tokens, type=pa.string())
+    for i, name in enumerate(table.column_names):
+        column = table.column(i)
+        text = pc.utf8_trim_whitespace(column)
+        hit = pc.is_in(text, value_set=value_set)
+        if not pc.any(hit).as_py():
+            continue
+        found = pc.value_counts(pc.filter(text, hit))
+        for token, n in zip(found.field("values").to_pylist(), found.field("counts").to_pylist(),
+                            strict=True):
+            if token != "":  # an empty cell is simply empty
+                counts.append((token, name, int(n)))
+        table = table.set_column(i, name, pc.if_else(hit, pa.scalar(None, pa.string()), column))
+    return table, _emptied_frame(counts)
 
 
 def _emptied_frame(counts: list[tuple[str, str, int]]) -> pd.DataFrame:
@@ -420,19 +506,19 @@ def _program_codes(codes: pd.Series, spec: Spec, path: Path) -> pd.Series:
             f"code only in letter case or spaces ({shown}); they are counted as different "
             "programs. If they are the same program, set normalise_programs = true in the "
             "[records] table of the spec (codes upper-cased, spaces removed)."
-        ), stacklevel=3)
+        ), stacklevel=5)
     return codes
 
 
-def _check_columns(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
-    absent = [c for c in spec.required_columns if c not in raw.columns]
+def _check_columns(names: list[str], spec: Spec, path: Path) -> None:
+    absent = [c for c in spec.required_columns if c not in names]
     if not absent:
         return
-    details = "; ".join(f"'{c}'{closest(c, raw.columns)}" for c in absent)
+    details = "; ".join(f"'{c}'{closest(c, names)}" for c in absent)
     raise InputError(
         f"records file '{path}' lacks {plural(len(absent), 'column')} named in "
         f"{spec.where}: {details}. Rename the column in the file or change the spec. "
-        f"The file has: {', '.join(map(str, raw.columns))}."
+        f"The file has: {', '.join(map(str, names))}."
     )
 
 
@@ -443,8 +529,18 @@ def _is_text_column(series: pd.Series) -> bool:
 def clean_text(series: pd.Series) -> pd.Series:
     """Return the cells as stripped text (object dtype); blank or missing cells become None.
 
-    Non-text cells (numbers from Parquet) are shown as text, so ``7`` becomes ``"7"``.
+    Non-text cells (numbers from Parquet) are shown as text, so ``7`` becomes ``"7"``. A
+    column of text is cleaned once per distinct value.
     """
+    if len(series) > _DISTINCT_FROM and _is_text_column(series):
+        codes, distinct = pd.factorize(series)  # missing cells get code -1
+        cleaned = _clean_cells(pd.Series(np.asarray(distinct, dtype=object), dtype=object))
+        out = np.append(cleaned.to_numpy(dtype=object), None)[codes]
+        return pd.Series(out, index=series.index, dtype=object)
+    return _clean_cells(series)
+
+
+def _clean_cells(series: pd.Series) -> pd.Series:
     out = pd.Series(None, index=series.index, dtype=object)
     filled = series.notna()
     # Arrow strings strip in compiled code (the object-dtype path is a Python loop).
@@ -453,12 +549,73 @@ def clean_text(series: pd.Series) -> pd.Series:
     return out.mask(out == "", None)
 
 
-def _check_duplicates(frame: pd.DataFrame, spec: Spec, path: Path) -> None:
-    ids = frame[spec.columns.recipient]
-    dup = ids.notna() & ids.duplicated(keep=False)
-    if not dup.any():
+def _series(column: pa.ChunkedArray) -> pd.Series:
+    """A column as pandas gives it from a Parquet file."""
+    return column.to_pandas()
+
+
+def _by_distinct(column: pa.ChunkedArray, parse: Callable[[pd.Series], object]) -> object:
+    """Apply ``parse`` (elementwise, from a Series to Series) once per distinct cell.
+
+    Text and date columns have few distinct values (dates, codes, numbers written as text):
+    each is parsed once with the same pandas functions and the results are taken back to the
+    rows, so every cell gets exactly what parsing the whole column would give it. Columns of
+    other types (numbers, timestamps) are parsed whole. Returns an array, or a tuple of
+    arrays when ``parse`` returns a tuple.
+    """
+    kind = column.type
+    if pa.types.is_dictionary(kind):
+        column, kind = column.cast(kind.value_type), kind.value_type
+    if not (pa.types.is_string(kind) or pa.types.is_large_string(kind)
+            or pa.types.is_date(kind)):
+        out = parse(_series(column))
+        return tuple(r.to_numpy() for r in out) if isinstance(out, tuple) else out.to_numpy()
+    encoded = column.combine_chunks().dictionary_encode()
+    distinct = np.empty(len(encoded.dictionary) + 1, dtype=object)
+    distinct[:-1] = encoded.dictionary.to_pandas().to_numpy(dtype=object)
+    distinct[-1] = None  # what a missing cell gives
+    codes = encoded.indices.fill_null(len(distinct) - 1).to_numpy()
+    out = parse(pd.Series(distinct, dtype=object))
+    if isinstance(out, tuple):
+        return tuple(r.to_numpy()[codes] for r in out)
+    return out.to_numpy()[codes]
+
+
+def _id_text(column: pa.ChunkedArray) -> pa.ChunkedArray:
+    """Recipient ids as stripped text, blank cells missing (the ids are mostly distinct)."""
+    if pa.types.is_string(column.type) or pa.types.is_large_string(column.type):
+        text = pc.utf8_trim_whitespace(column)
+        return pc.if_else(pc.equal(text, ""), pa.scalar(None, text.type), text)
+    return pa.chunked_array([pa.array(clean_text(_series(column)).to_numpy(), type=pa.string())])
+
+
+def _cell(column: pa.ChunkedArray, pos: int) -> object:
+    """One cell as read (for messages)."""
+    return column[pos].as_py()
+
+
+def _frame(table: pa.Table, parsed: dict[str, np.ndarray], path: Path) -> pd.DataFrame:
+    """The records frame: parsed spec columns, every other column as read, in file order."""
+    others = [name for name in table.column_names if name not in parsed]
+    if others and path.suffix.lower() in _PARQUET_SUFFIXES:
+        rest = pd.read_parquet(path, columns=others).reset_index(drop=True)
+    else:
+        rest = _text_frame(table.select(others))
+    index = pd.RangeIndex(table.num_rows)
+    # Each parsed array keeps its dtype (object text stays object under pandas 3) and becomes
+    # the frame's column as it is (copy=False: no consolidated copy).
+    columns = {name: pd.Series(parsed[name], index=index, dtype=parsed[name].dtype, copy=False)
+               if name in parsed else rest[name].set_axis(index) for name in table.column_names}
+    return pd.DataFrame(columns, index=index, copy=False)
+
+
+def _check_duplicates(ids: pa.ChunkedArray, spec: Spec, path: Path) -> None:
+    distinct = len(pc.unique(ids)) - (ids.null_count > 0)  # unique() counts null once
+    if distinct == len(ids) - ids.null_count:
         return
-    groups = frame.index[dup].groupby(ids[dup].to_numpy())
+    ids = pd.Series(ids.to_numpy(zero_copy_only=False), dtype=object)
+    dup = ids.notna() & ids.duplicated(keep=False)
+    groups = ids.index[dup].groupby(ids[dup].to_numpy())
     shown = [f"'{k}' in {format_rows(groups[k])}" for k in sorted(groups)[:_SHOW]]
     raise InputError(
         f"records file '{path}': {plural(len(groups), 'recipient id', ('occurs', 'occur'))} "
@@ -468,11 +625,12 @@ def _check_duplicates(frame: pd.DataFrame, spec: Spec, path: Path) -> None:
     )
 
 
-def _fail_if_mostly_bad(bad: pd.Series, present: pd.Series, series: pd.Series, where: str,
-                        what: str, fix: str) -> None:
+def _fail_if_mostly_bad(bad: np.ndarray, present: np.ndarray, column: pa.ChunkedArray,
+                        where: str, what: str, fix: str) -> None:
     n_bad, n_present = int(bad.sum()), int(present.sum())
     if n_bad >= _WRONG_TYPE_MIN and n_bad > _WRONG_TYPE_SHARE * n_present:
-        examples = ", ".join(repr(v) for v in series[bad].astype(str).unique()[:3])
+        cells = pd.Series(column.take(np.flatnonzero(bad)).to_pylist(), dtype=object)
+        examples = ", ".join(repr(v) for v in cells.astype(str).unique()[:3])
         raise InputError(
             f"{where} is not {what} in {n_bad} of {n_present} filled rows "
             f"(for example {examples}); {fix}"
@@ -513,8 +671,11 @@ def _parse_dates(
         dates = pd.to_datetime(series.astype(object).map(_one_date), errors="coerce")
         text = series.astype(object).map(lambda v: v if isinstance(v, str) else None)
         dates = dates.fillna(pd.to_datetime(clean_text(text), format=fmt, errors="coerce"))
-    # One unit whatever the source (pandas 3 infers seconds or microseconds per column).
-    dates = dates.dt.normalize().astype("datetime64[ns]")
+    # One unit whatever the source (pandas 3 infers seconds or microseconds per column); a
+    # date outside the nanosecond range is unreadable, as pandas 2 parses it.
+    dates = dates.dt.normalize()
+    dates = dates.where((dates >= pd.Timestamp.min) & (dates <= pd.Timestamp.max))
+    dates = dates.astype("datetime64[ns]")
     return dates, present & dates.isna(), present
 
 
@@ -523,7 +684,8 @@ def _one_date(value: object) -> object:
     return pd.Timestamp(value) if isinstance(value, (dt.date, np.datetime64)) else None
 
 
-def _parse_date_columns(frame: pd.DataFrame, spec: Spec, path: Path, ledger: _Ledger) -> None:
+def _parse_date_columns(table: pa.Table, parsed: dict[str, np.ndarray], spec: Spec,
+                        path: Path, ledger: _Ledger) -> None:
     expected = spec.date_format or "YYYY-MM-DD"
     fix = (
         "write the dates as YYYY-MM-DD or set date_format in the [records] table of the spec."
@@ -531,13 +693,14 @@ def _parse_date_columns(frame: pd.DataFrame, spec: Spec, path: Path, ledger: _Le
         else f"check the date_format \"{spec.date_format}\" in the [records] table of the spec."
     )
     for column in spec.date_columns:
-        original = frame[column]
-        dates, bad, present = _parse_dates(original, spec.date_format)
+        original = table[column]
+        dates, bad, present = _by_distinct(
+            original, lambda s: _parse_dates(s, spec.date_format))
         where = f"records file '{path}': column '{column}'"
         _fail_if_mostly_bad(bad, present, original, where, "a date", fix)
-        ledger.exclude(bad.to_numpy(), f"unreadable {column}", lambda p, c=column, v=original: (
-            f"{c} '{v.iloc[p]}' is not a date (expected {expected})"), bad_cell=column)
-        frame[column] = dates
+        ledger.exclude(bad, f"unreadable {column}", lambda p, c=column, v=original: (
+            f"{c} '{_cell(v, p)}' is not a date (expected {expected})"), bad_cell=column)
+        parsed[column] = dates
 
 
 def _numbers(series: pd.Series, binary: bool,
@@ -564,11 +727,11 @@ def _label(cov: Covariate) -> str:
     return cov.column if cov.column == cov.name else f"{cov.column} ({cov.name})"
 
 
-def _parse_covariate(frame: pd.DataFrame, cov: Covariate, path: Path, ledger: _Ledger,
-                     decimal: str = ".") -> None:
-    original = frame[cov.column]
+def _parse_covariate(table: pa.Table, parsed: dict[str, np.ndarray], cov: Covariate,
+                     path: Path, ledger: _Ledger, decimal: str = ".") -> None:
+    original = table[cov.column]
     if cov.kind == "categorical":
-        frame[cov.column] = clean_text(original)
+        parsed[cov.column] = _by_distinct(original, clean_text)
         return
     binary = cov.kind == "binary"
     mark = "','" if decimal == "," else "'.'"
@@ -577,14 +740,14 @@ def _parse_covariate(frame: pd.DataFrame, cov: Covariate, path: Path, ledger: _L
         else ("a number", f"use numbers with {mark} decimals (set decimal in the [records] "
               "table of the spec).")
     )
-    values, present = _numbers(original, binary, decimal)
-    bad = present & values.isna()
+    values, present = _by_distinct(original, lambda s: _numbers(s, binary, decimal))
+    bad = present & np.isnan(values)
     where = f"records file '{path}': column '{cov.column}' (covariate {cov.name})"
     _fail_if_mostly_bad(bad, present, original, where, what, fix)
-    ledger.exclude(bad.to_numpy(), f"unreadable {_label(cov)}",
-                   lambda p: f"{_label(cov)} '{original.iloc[p]}' is not {what}",
+    ledger.exclude(bad, f"unreadable {_label(cov)}",
+                   lambda p: f"{_label(cov)} '{_cell(original, p)}' is not {what}",
                    bad_cell=cov.column)
-    frame[cov.column] = values
+    parsed[cov.column] = values
 
 
 def _check_records(frame: pd.DataFrame, spec: Spec, cutoff: pd.Timestamp | None,

@@ -75,7 +75,7 @@ class ReferenceData:
         digest = hashlib.sha256()
         digest.update(json.dumps(list(self.design.columns)).encode())
         for array in (self.time, self.event.astype(np.int8), self.X):
-            digest.update(np.ascontiguousarray(array, dtype=array.dtype).tobytes())
+            digest.update(np.ascontiguousarray(array, dtype=array.dtype))  # no bytes copy
         if self.strata is not None:
             digest.update(json.dumps([str(s) for s in self.strata]).encode())
         return digest.hexdigest()
@@ -229,7 +229,11 @@ def group_terms(design: Design, fit: CoxFit, X: np.ndarray) -> tuple[list[str], 
     """
     groups = list(dict.fromkeys(design.groups))
     member = np.array([[g == name for g in design.groups] for name in groups], dtype=float)
-    return groups, ((X - fit.center) * fit.coef) @ member.T
+    # (x - center) . (coef per group), without an n x p temporary
+    weights = fit.coef[:, None] * member.T
+    terms = X @ weights
+    terms -= fit.center @ weights
+    return groups, terms
 
 
 def path_contributions(hazard: np.ndarray, terms: np.ndarray) -> np.ndarray:
@@ -258,11 +262,13 @@ def path_contributions(hazard: np.ndarray, terms: np.ndarray) -> np.ndarray:
     """
     nodes, weights = np.polynomial.legendre.leggauss(PATH_NODES)
     nodes, weights = (nodes + 1) / 2, weights / 2
-    exponent = np.outer(nodes, terms.sum(axis=1))
-    exponent -= exponent.max(axis=1, keepdims=True)
-    path = hazard * np.exp(exponent)
-    path /= path.sum(axis=1, keepdims=True)
-    return weights @ (path @ terms)
+    lp = terms.sum(axis=1)
+    share = np.zeros(terms.shape[1])
+    for node, weight in zip(nodes, weights, strict=True):  # one node at a time: O(n) memory
+        exponent = node * lp
+        path = hazard * np.exp(exponent - exponent.max())
+        share += weight * (path @ terms) / path.sum()
+    return share
 
 
 def _read_json(path: Path) -> dict:
