@@ -278,18 +278,21 @@ def attack(public: Path) -> list[dict]:
         claims += _at_risk_claims(code, curve)
     if report.is_file():
         claims += _funnel_claims(report.read_text(encoding="utf-8"), programs)
-    return claims + _total_claims(run["counts"], programs, reasons)
+    return claims + _total_claims(run, programs, reasons)
 
 
-def _total_claims(counts: dict, programs: pd.DataFrame, reasons: pd.DataFrame) -> list[dict]:
+def _total_claims(run: dict, programs: pd.DataFrame, reasons: pd.DataFrame) -> list[dict]:
     """Hidden cells from each published total minus the cells shown."""
-    claims = []
+    claims, counts = [], run["counts"]
 
     def claim(cell, derivation, bounds):
         claims.append({"cell": cell, "derivation": derivation, "range": bounds})
 
     for i, bounds in _total_ranges(counts.get("kept"), list(programs["recipients"])).items():
         claim(("recipients", programs["program"].iloc[i]), "total kept minus shown", bounds)
+    network = run.get("network") or {}
+    for i, bounds in _total_ranges(network.get("observed"), list(programs["observed"])).items():
+        claim(("observed", programs["program"].iloc[i]), "network total minus shown", bounds)
     for i, bounds in _total_ranges(counts.get("excluded"), list(reasons["records"])).items():
         claim(("exclusions", reasons["reason"].iloc[i]), "total excluded minus shown", bounds)
     read, kept = counts.get("read"), counts.get("kept")
@@ -428,6 +431,35 @@ def test_a_total_gives_back_a_single_hidden_cell_unless_withheld(demo_folder, tm
     assert successes(public, folder) == []
     run = json.loads((public / "run.json").read_text(encoding="utf-8"))
     assert run["counts"]["kept"] is None and run["counts"]["read"] is None
+
+
+def _one_hidden_count(folder: Path, out: Path) -> Path:
+    """The demo folder with every hidden event count but the first set to 0 (as if those
+    programs had had no event), in programs.csv and in the network's total."""
+    shutil.copytree(folder, out)
+    programs = pd.read_csv(out / "programs.csv", dtype={"program": str})
+    small = programs.index[programs["observed"].between(1, N - 1)
+                           & (programs["recipients"] >= N)]
+    assert len(small) >= 2
+    programs.loc[small[1:], "observed"] = 0
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    run["network"]["observed"] = int(programs["observed"].sum())
+    write_csv(out / "programs.csv", programs)
+    (out / "run.json").write_text(json.dumps(run), encoding="utf-8")
+    return out
+
+
+def test_the_network_total_gives_back_a_single_hidden_count_unless_withheld(demo_folder,
+                                                                            tmp_path):
+    folder = _one_hidden_count(demo_folder, tmp_path / "edited")
+    found = successes(naive_release(folder, tmp_path / "naive"), folder)
+    assert "network total minus shown" in {f["derivation"] for f in found}
+    public = write_public_release(folder, N, tmp_path / "public")
+    assert successes(public, folder) == []
+    run = json.loads((public / "run.json").read_text(encoding="utf-8"))
+    assert run["network"] is None
+    withheld = pd.read_csv(public / "withheld.csv")
+    assert withheld["figure"].str.contains("whole network").any()
 
 
 @pytest.mark.parametrize("network", ["demo_folder", "small_network"])

@@ -398,9 +398,55 @@ def _public_exclusions(reasons: pd.DataFrame, excluded: float, n: int, log: list
     return reasons.assign(records=text), total_shown
 
 
+def _network_shown(data, programs: pd.DataFrame, n: int) -> bool:
+    """True when the network's total O leaves every hidden count a spread of MIN_SPREAD."""
+    observed = data.programs["observed"].to_numpy(float)
+    hidden = programs["protected"].to_numpy(bool)
+    ranges = [hidden_candidates(o, r, n) if h else np.array([v])
+              for o, r, h, v in zip(programs["observed"], programs["recipients"], hidden,
+                                    observed, strict=True)]
+    lower = np.array([float(c.min()) if c.size else 0.0 for c in ranges])
+    upper = np.array([float(c.max()) if c.size else np.inf for c in ranges])
+    return _total_is_safe(float(observed.sum()), observed, hidden, lower, upper)
+
+
+def _public_multiplicity(many: dict | None, programs: pd.DataFrame, data, log: list
+                         ) -> dict | None:
+    """run.json ``multiplicity`` with the sums that would give back a hidden figure withheld.
+
+    The number of flags minus the flags shown gives a withheld verdict, so the entry is
+    withheld whole then (the caution on expected false flags still says how many to expect);
+    the posterior expected wrong flags sum 1 - P(HR > margin) over the flagged programs, a
+    function of their O.
+    """
+    if not many:
+        return many
+    if (programs["verdict"] == WITHHELD).any():
+        log.append(("network", "number of programs flagged and expected false flags",
+                    "the flags minus the verdicts shown would give back a withheld verdict"))
+        return None
+    out = dict(many)
+    flagged = data.programs["verdict"].isin(["excess", "favorable"]).to_numpy()
+    if (flagged & programs["protected"].to_numpy(bool)).any():
+        out["posterior_expected_wrong_flags"] = None
+        log.append(("network", "posterior expected number of wrong flags",
+                    "it sums a probability of a protected program, a function of its count"))
+    return out
+
+
 def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
-                corrected_shown: bool) -> dict:
+                corrected_shown: bool, network_shown: bool, multiplicity: dict | None
+                ) -> dict:
     public = {k: v for k, v in run.items() if k != "inputs"}
+    if "multiplicity" in run:
+        public["multiplicity"] = multiplicity
+    network = run.get("network")
+    if not network_shown and isinstance(network, dict):
+        # the total O, and every figure it follows from (O/E with E, the exact limits and
+        # test): null; a caution that quotes them is left out with them
+        public["network"] = None
+        quoted = f"{network['oe_lower']:.2f} to {network['oe_upper']:.2f}"
+        public["cautions"] = [c for c in run.get("cautions", []) if quoted not in str(c)]
     inputs = run.get("inputs") or {}
     if isinstance(inputs, dict):
         public["inputs"] = {k: {"sha256": v.get("sha256")} for k, v in inputs.items()
@@ -462,6 +508,12 @@ def make_release(data: EvaluationFolder, n: int) -> PublicRelease:
     if not excluded_shown:
         log.append(("network", "records excluded and records read",
                     "the total minus the reasons shown would give back a hidden count"))
+    network_shown = _network_shown(data, programs, n)
+    if not network_shown:
+        log.append(("network", "observed and expected events of the whole network, its O/E, "
+                               "limits and exact test",
+                    "the network's total minus the programs shown would give back a hidden "
+                    "count"))
     corrected_shown = True
     if data.corrections is not None:
         kinds, corrected_shown = _public_exclusions(
@@ -499,6 +551,8 @@ def make_release(data: EvaluationFolder, n: int) -> PublicRelease:
         threshold=n,
         programs=programs,
         tables=tables,
-        run=_public_run(data.run, n, kept_shown, excluded_shown, corrected_shown),
+        run=_public_run(data.run, n, kept_shown, excluded_shown, corrected_shown,
+                        network_shown, _public_multiplicity(data.run.get("multiplicity"),
+                                                            programs, data, log)),
         withheld=pd.DataFrame(log, columns=["scope", "figure", "reason"]),
     )
