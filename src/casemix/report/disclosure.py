@@ -27,12 +27,13 @@ feasibility arithmetic it needs (intervals of whole numbers) is short.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
-from casemix.errors import plural
+from casemix.errors import InputError, plural
 from casemix.report.folder import EvaluationFolder, read_csv_as_written
 from casemix.report.plots import at_risk_times
 from casemix.report.public import corrections_by_kind, exclusions_by_reason
@@ -45,12 +46,14 @@ __all__ = [
     "KEPT_COLUMNS",
     "MIN_SPREAD",
     "PUBLIC_FILES",
+    "SHARED_CELLS",
     "WITHHELD",
     "PublicRelease",
     "coarse_curve",
     "feasible_range",
     "hidden_candidates",
     "make_release",
+    "protect_releases",
     "protect_total",
     "protected_programs",
     "verdict_says_nothing",
@@ -556,3 +559,109 @@ def make_release(data: EvaluationFolder, n: int) -> PublicRelease:
                                                             programs, data, log)),
         withheld=pd.DataFrame(log, columns=["scope", "figure", "reason"]),
     )
+
+
+SHARED_CELLS = {
+    "programs.csv": ("program", ("recipients",)),
+    "followup.csv": ("program", ("recipients", "lost_to_followup")),
+    "exclusions_by_reason.csv": ("reason", ("records",)),
+    "corrections_by_kind.csv": ("correction", ("records",)),
+}
+"""Per table, its key column and the count columns that several analyses of one network
+share (the same cohort gives the same recipients, exclusions and corrections)."""
+
+_SHARED_TOTALS = ("read", "kept", "excluded", "corrected")
+
+
+def _hidden_in(releases: Mapping[str, PublicRelease], name: str, key: str,
+               column: str) -> dict:
+    """Key -> the first analysis whose release hides the cell (any text but a count)."""
+    out: dict = {}
+    for analysis, release in releases.items():
+        table = release.tables.get(name)
+        if table is None or column not in table:
+            continue
+        for k, text in zip(table[key], table[column], strict=True):
+            if text is not None and not str(text).isdigit():
+                out.setdefault(k, analysis)
+    return out
+
+
+def _align(table: pd.DataFrame, key: str, column: str, hidden: dict, analysis: str,
+           what: str, log: list) -> pd.DataFrame:
+    # a count shown here is not the small count hidden there: it shows as "withheld"
+    texts = table[column].astype(object).to_numpy().copy()
+    for i, k in enumerate(table[key]):
+        if k in hidden and str(texts[i]).isdigit():
+            texts[i] = WITHHELD
+            log.append((str(k), what, f"hidden in the analysis {hidden[k]} of the same "
+                                      "network, which this one would give back"))
+    return table.assign(**{column: texts})
+
+
+def protect_releases(releases: Mapping[str, PublicRelease]) -> dict[str, PublicRelease]:
+    """Complementary suppression across the public releases of several analyses.
+
+    The analyses (outcomes, horizons) of one network share counts: the recipients of a
+    program, the records excluded per reason and corrected per kind, the totals read, kept,
+    excluded and corrected. Each release protects its own totals; but a cell one release
+    withholds (a small count, or a second cell withheld so that a total does not give the
+    first back) must not be shown by another. So every shared cell hidden in one release is
+    hidden in all, and a shared total withheld in one is withheld in all. Hiding more cells
+    of a total only widens what a reader can infer of each, so the totals each release kept
+    stay safe.
+
+    Parameters
+    ----------
+    releases : mapping of str -> PublicRelease
+        The releases, by analysis name (from :func:`make_release`, one threshold).
+
+    Returns
+    -------
+    dict of str -> PublicRelease
+        The releases with the shared cells aligned; their ``withheld`` lists say which cells
+        were hidden because another analysis hides them.
+
+    Raises
+    ------
+    InputError
+        When there is no release, or the releases use different thresholds.
+    """
+    if not releases:
+        raise InputError("protect_releases needs at least one release.")
+    thresholds = {name: r.threshold for name, r in releases.items()}
+    if len(set(thresholds.values())) > 1:
+        raise InputError(
+            "the releases of one network must use one threshold; got "
+            + ", ".join(f"{name}: {n}" for name, n in thresholds.items()) + ".")
+    hidden = {(name, column): _hidden_in(releases, name, key, column)
+              for name, (key, columns) in SHARED_CELLS.items() for column in columns}
+    withheld_totals: dict[str, str] = {}
+    for name, release in releases.items():
+        for total in _SHARED_TOTALS:
+            if total in release.run["counts"] and release.run["counts"][total] is None:
+                withheld_totals.setdefault(total, name)
+    out = {}
+    for analysis, release in releases.items():
+        log: list[tuple[str, str, str]] = []
+        tables = dict(release.tables)
+        for name, (key, columns) in SHARED_CELLS.items():
+            for column in columns:
+                if name in tables and column in tables[name]:
+                    tables[name] = _align(tables[name], key, column, hidden[(name, column)],
+                                          analysis, f"{column} in {name}", log)
+        counts = dict(release.run["counts"])
+        for total, where in withheld_totals.items():
+            if counts.get(total) is not None:
+                counts[total] = None
+                log.append(("network", f"records {total}",
+                            f"withheld in the analysis {where} of the same network"))
+        programs = release.programs.assign(recipients=tables["programs.csv"]["recipients"]
+                                           .to_numpy())
+        out[analysis] = replace(
+            release, programs=programs, tables=tables,
+            run={**release.run, "counts": counts},
+            withheld=pd.concat([release.withheld,
+                                pd.DataFrame(log, columns=["scope", "figure", "reason"])],
+                               ignore_index=True))
+    return out
