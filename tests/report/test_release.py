@@ -31,7 +31,7 @@ from casemix import demo
 from casemix._io import write_csv
 from casemix.evaluation.evaluate import evaluate
 from casemix.report import render_report, write_public_release
-from casemix.report.disclosure import KEPT_COLUMNS
+from casemix.report.disclosure import KEPT_COLUMNS, PRIOR_DIGITS
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts
 from casemix.stats.shrinkage import Prior, posterior
@@ -431,6 +431,8 @@ def test_a_total_gives_back_a_single_hidden_cell_unless_withheld(demo_folder, tm
     assert successes(public, folder) == []
     run = json.loads((public / "run.json").read_text(encoding="utf-8"))
     assert run["counts"]["kept"] is None and run["counts"]["read"] is None
+    page = unescape((public / "report.html").read_text(encoding="utf-8"))
+    assert "withheld under the disclosure rule: records read; recipients kept" in page
 
 
 def _one_hidden_count(folder: Path, out: Path) -> Path:
@@ -460,6 +462,10 @@ def test_the_network_total_gives_back_a_single_hidden_count_unless_withheld(demo
     assert run["network"] is None
     withheld = pd.read_csv(public / "withheld.csv")
     assert withheld["figure"].str.contains("whole network").any()
+    # the report says in words what its "–" for the network stands for
+    page = unescape((public / "report.html").read_text(encoding="utf-8"))
+    assert "withheld under the disclosure rule: " in page
+    assert "the whole network's events, O/E and exact test" in page
 
 
 @pytest.mark.parametrize("network", ["demo_folder", "small_network"])
@@ -473,6 +479,15 @@ def test_the_attacker_recovers_nothing_from_the_public_release(network, request,
     facts = _report_facts((public / "report.html").read_text(encoding="utf-8"))
     assert set(programs["program"]) <= set(facts)
     assert any(f["hr"] is not None for f in facts.values())
+    # the figures that depend on the shared prior are published at the printed precision
+    shown = pd.read_csv(public / "programs.csv", dtype={"program": str})
+    for column, digits in PRIOR_DIGITS.items():
+        values = shown[column].dropna().to_numpy(float)
+        assert values.size and np.allclose(values, np.round(values, digits), rtol=0,
+                                           atol=1e-12), column
+    prior = json.loads((public / "run.json").read_text(encoding="utf-8"))["prior"]
+    assert all(prior[k] == float(f"{prior[k]:.2g}") for k in ("shape", "rate", "mean", "sd"))
+    assert "components" not in prior and "log_marginal" not in prior
 
 
 def test_public_files_hold_no_recipient_level_data(small_network, tmp_path):

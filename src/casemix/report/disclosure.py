@@ -19,7 +19,12 @@ docs/disclosure.md; in short, with threshold N:
   places a single event on its day and every published number at risk is at least N;
 - a published total (records read, kept, excluded) must not narrow a hidden cell it adds up
   to to three values or fewer: a second exclusion reason is withheld when that protects
-  the hidden one, otherwise the total is withheld.
+  the hidden one, otherwise the total is withheld; the same holds for the network's total
+  O (run.json ``network``), and flag totals are withheld with a withheld verdict;
+- figures of shown programs that depend on the shared prior, and the prior's summary, are
+  published at the report's printed precision (:data:`PRIOR_DIGITS`, :data:`PRIOR_FIGURES`);
+- across the releases of several analyses of one network, :func:`protect_releases` hides in
+  every release a shared cell or total hidden in one.
 
 The rule is written by hand because it is specific to the files of this package; the
 feasibility arithmetic it needs (intervals of whole numbers) is short.
@@ -27,6 +32,7 @@ feasibility arithmetic it needs (intervals of whole numbers) is short.
 
 from __future__ import annotations
 
+import re
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
 
@@ -45,6 +51,8 @@ from casemix.survival import kaplan_meier
 __all__ = [
     "KEPT_COLUMNS",
     "MIN_SPREAD",
+    "PRIOR_DIGITS",
+    "PRIOR_FIGURES",
     "PUBLIC_FILES",
     "SHARED_CELLS",
     "WITHHELD",
@@ -72,6 +80,17 @@ PUBLIC_FILES = ("programs.csv", "followup.csv", "curves.csv", "casemix.csv",
                 "coefficients.csv", "exclusions_by_reason.csv", "corrections_by_kind.csv",
                 "out_of_range.csv")
 """The tables of a public release (run.json and report.html are written beside them)."""
+
+PRIOR_DIGITS = {"hr_mean": 2, "hr_lower": 2, "hr_upper": 2, "hr_median": 2, "weight": 2,
+                "p_above": 3, "p_below": 3}
+"""Decimals of the figures of a shown program that depend on the prior, as published. The
+prior is estimated from every program, hidden ones included, so at full precision these
+figures carry (a little) information about the hidden counts; they are published at the
+precision the report prints (docs/disclosure.md, "The shared prior")."""
+
+PRIOR_FIGURES = 2
+"""Significant figures of every number of the prior's entry in the public run.json (shape,
+rate, mean, sd, the hyperposterior's summary, the numbers of its note)."""
 
 MIN_SPREAD = 3
 """A hidden count is protected when the whole numbers a reader cannot rule out span at least
@@ -357,6 +376,9 @@ def _public_programs(data: EvaluationFolder, n: int, log: list) -> pd.DataFrame:
             verdicts[i] = WITHHELD
             log.append((code, "verdict", "the verdict would narrow down the hidden count"))
     out["verdict"] = verdicts
+    for column, digits in PRIOR_DIGITS.items():
+        if column in out:
+            out[column] = pd.to_numeric(out[column]).round(digits)
     out["protected"] = protected.to_numpy()
     return out
 
@@ -437,6 +459,31 @@ def _public_multiplicity(many: dict | None, programs: pd.DataFrame, data, log: l
     return out
 
 
+def _significant(value: float) -> float:
+    return float(f"{value:.{PRIOR_FIGURES}g}")
+
+
+def _coarse(value):
+    """Every float in a run.json value (nested lists and objects) to PRIOR_FIGURES figures."""
+    if isinstance(value, dict):
+        return {k: _coarse(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_coarse(v) for v in value]
+    if isinstance(value, float) and np.isfinite(value):
+        return _significant(value)
+    return value
+
+
+def _coarse_prior(prior: dict) -> dict:
+    """The prior's summary to PRIOR_FIGURES significant figures (shape, rate, mean, sd, the
+    hyperposterior's summary and the numbers of the note); no components, no likelihood."""
+    out = _coarse({k: v for k, v in prior.items() if k not in ("log_marginal", "components")})
+    if isinstance(out.get("note"), str):
+        out["note"] = re.sub(r"\d+\.\d+(?:e[-+]?\d+)?",
+                             lambda m: f"{_significant(float(m[0])):g}", out["note"])
+    return out
+
+
 def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
                 corrected_shown: bool, network_shown: bool, multiplicity: dict | None
                 ) -> dict:
@@ -456,8 +503,7 @@ def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
                             if isinstance(v, dict)}
     # The marginal likelihood and the mixture's components are functions of every program's
     # counts, hidden ones included: only the prior's summary is published.
-    public["prior"] = {k: v for k, v in run["prior"].items()
-                       if k not in ("log_marginal", "components")}
+    public["prior"] = _coarse_prior(run["prior"])
     counts = dict(run["counts"])
     # Per kind and per reason they are in corrections_by_kind.csv and exclusions_by_reason.csv,
     # protected there.
