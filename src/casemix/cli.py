@@ -489,7 +489,9 @@ def report(
         int | None,
         typer.Option("--suppress-below", min=2,
                      help="Write a public release: counts from 1 to N-1 hidden, with every "
-                          "figure that gives them back."),
+                          "figure that gives them back. N is your choice: values around 10-11 "
+                          "are common practice (no source); the disclosure rules that apply "
+                          "to your data come first."),
     ] = None,
     audit: Annotated[
         Path | None,

@@ -9,11 +9,15 @@ import pandas as pd
 import pytest
 from scipy import stats
 
+from casemix.errors import InputError
 from casemix.report.disclosure import (
     MIN_SPREAD,
+    WITHHELD,
+    PublicRelease,
     coarse_curve,
     feasible_range,
     hidden_candidates,
+    protect_releases,
     protect_total,
     protected_programs,
     verdict_says_nothing,
@@ -134,3 +138,55 @@ def test_coarse_curve_publishes_nothing_from_fewer_than_n_events():
     expected = pd.DataFrame({"time": np.arange(366.0), "expected": np.ones(366)})
     curve = coarse_curve(time, event, N, 365, expected)
     assert curve["time"].tolist() == [0.0]
+
+
+def _release(reasons: list[str], recipients: list[str], excluded, n: int = N) -> PublicRelease:
+    programs = pd.DataFrame({"program": ["a", "b"], "recipients": recipients,
+                             "observed": ["12", "30"], "verdict": ["consistent"] * 2})
+    tables = {
+        "programs.csv": programs,
+        "followup.csv": pd.DataFrame({"program": ["a", "b"], "recipients": recipients,
+                                      "lost_to_followup": ["0", "0"]}),
+        "exclusions_by_reason.csv": pd.DataFrame({"reason": ["x", "y", "z"],
+                                                  "records": reasons}),
+    }
+    return PublicRelease(threshold=n, programs=programs.assign(protected=False),
+                         tables=tables, run={"counts": {"excluded": excluded, "kept": 200}},
+                         withheld=pd.DataFrame(columns=["scope", "figure", "reason"]))
+
+
+def test_a_cell_hidden_in_one_analysis_is_hidden_in_every_other():
+    # excluded per reason: x = 4, y = 25, z = 40 (69 in all), the same in both analyses.
+    # The first release shows the total and withholds y to protect x; the second withholds
+    # its total, so needed no second cell, and shows y.
+    first = _release(["<11", WITHHELD, "40"], ["80", "62"], 69)
+    second = _release(["<11", "25", "40"], ["80", "<11"], None)
+    # together, as published: x = 69 - 25 - 40
+    assert feasible_range(69 - 40 - 25, [1.0], [N - 1.0]).tolist() == [[4.0, 4.0]]
+    out = protect_releases({"graft failure": first, "death": second})
+    assert out["death"].tables["exclusions_by_reason.csv"]["records"].tolist() == [
+        "<11", WITHHELD, "40"]
+    # x now keeps the range the first release alone leaves it (x + y = 29, y >= N)
+    bounds = feasible_range(69 - 40, np.array([1.0, N]), np.array([N - 1.0, np.inf]))
+    assert bounds[0].tolist() == [1.0, N - 1.0]
+    # a recipients cell hidden in one analysis is hidden in the other, in every table
+    assert out["graft failure"].tables["programs.csv"]["recipients"].tolist() == [
+        "80", WITHHELD]
+    assert out["graft failure"].programs["recipients"].tolist() == ["80", WITHHELD]
+    assert out["graft failure"].tables["followup.csv"]["recipients"].tolist() == [
+        "80", WITHHELD]
+    # a total withheld in one is withheld in all, and each release says why
+    assert out["graft failure"].run["counts"] == {"excluded": None, "kept": 200}
+    reasons = out["graft failure"].withheld["reason"]
+    assert reasons.str.contains("analysis death").sum() == 3  # two cells, one total
+    assert out["death"].withheld["reason"].str.contains("analysis graft failure").sum() == 1
+    # the inputs are not changed
+    assert second.tables["exclusions_by_reason.csv"]["records"].tolist()[1] == "25"
+
+
+def test_releases_with_different_thresholds_are_refused():
+    with pytest.raises(InputError, match="one threshold"):
+        protect_releases({"a": _release(["0"] * 3, ["80", "62"], 0),
+                          "b": _release(["0"] * 3, ["80", "62"], 0, n=6)})
+    with pytest.raises(InputError, match="at least one"):
+        protect_releases({})

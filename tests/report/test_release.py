@@ -31,7 +31,7 @@ from casemix import demo
 from casemix._io import write_csv
 from casemix.evaluation.evaluate import Evaluation, evaluate
 from casemix.report import render_report, write_public_release
-from casemix.report.disclosure import KEPT_COLUMNS
+from casemix.report.disclosure import KEPT_COLUMNS, PRIOR_DIGITS
 from casemix.report.public import exclusions_by_reason
 from casemix.report.suppress import suppress_counts
 from casemix.stats.shrinkage import Prior, posterior
@@ -278,18 +278,21 @@ def attack(public: Path) -> list[dict]:
         claims += _at_risk_claims(code, curve)
     if report.is_file():
         claims += _funnel_claims(report.read_text(encoding="utf-8"), programs)
-    return claims + _total_claims(run["counts"], programs, reasons)
+    return claims + _total_claims(run, programs, reasons)
 
 
-def _total_claims(counts: dict, programs: pd.DataFrame, reasons: pd.DataFrame) -> list[dict]:
+def _total_claims(run: dict, programs: pd.DataFrame, reasons: pd.DataFrame) -> list[dict]:
     """Hidden cells from each published total minus the cells shown."""
-    claims = []
+    claims, counts = [], run["counts"]
 
     def claim(cell, derivation, bounds):
         claims.append({"cell": cell, "derivation": derivation, "range": bounds})
 
     for i, bounds in _total_ranges(counts.get("kept"), list(programs["recipients"])).items():
         claim(("recipients", programs["program"].iloc[i]), "total kept minus shown", bounds)
+    network = run.get("network") or {}
+    for i, bounds in _total_ranges(network.get("observed"), list(programs["observed"])).items():
+        claim(("observed", programs["program"].iloc[i]), "network total minus shown", bounds)
     for i, bounds in _total_ranges(counts.get("excluded"), list(reasons["records"])).items():
         claim(("exclusions", reasons["reason"].iloc[i]), "total excluded minus shown", bounds)
     read, kept = counts.get("read"), counts.get("kept")
@@ -428,6 +431,41 @@ def test_a_total_gives_back_a_single_hidden_cell_unless_withheld(demo_folder, tm
     assert successes(public, folder) == []
     run = json.loads((public / "run.json").read_text(encoding="utf-8"))
     assert run["counts"]["kept"] is None and run["counts"]["read"] is None
+    page = unescape((public / "report.html").read_text(encoding="utf-8"))
+    assert "withheld under the disclosure rule: records read; recipients kept" in page
+
+
+def _one_hidden_count(folder: Path, out: Path) -> Path:
+    """The demo folder with every hidden event count but the first set to 0 (as if those
+    programs had had no event), in programs.csv and in the network's total."""
+    shutil.copytree(folder, out)
+    programs = pd.read_csv(out / "programs.csv", dtype={"program": str})
+    small = programs.index[programs["observed"].between(1, N - 1)
+                           & (programs["recipients"] >= N)]
+    assert len(small) >= 2
+    programs.loc[small[1:], "observed"] = 0
+    run = json.loads((out / "run.json").read_text(encoding="utf-8"))
+    run["network"]["observed"] = int(programs["observed"].sum())
+    write_csv(out / "programs.csv", programs)
+    (out / "run.json").write_text(json.dumps(run), encoding="utf-8")
+    return out
+
+
+def test_the_network_total_gives_back_a_single_hidden_count_unless_withheld(demo_folder,
+                                                                            tmp_path):
+    folder = _one_hidden_count(demo_folder, tmp_path / "edited")
+    found = successes(naive_release(folder, tmp_path / "naive"), folder)
+    assert "network total minus shown" in {f["derivation"] for f in found}
+    public = write_public_release(folder, N, tmp_path / "public")
+    assert successes(public, folder) == []
+    run = json.loads((public / "run.json").read_text(encoding="utf-8"))
+    assert run["network"] is None
+    withheld = pd.read_csv(public / "withheld.csv")
+    assert withheld["figure"].str.contains("whole network").any()
+    # the report says in words what its "–" for the network stands for
+    page = unescape((public / "report.html").read_text(encoding="utf-8"))
+    assert "withheld under the disclosure rule: " in page
+    assert "the whole network's events, O/E and exact test" in page
 
 
 @pytest.mark.parametrize("network", ["demo_folder", "small_network"])
@@ -441,6 +479,15 @@ def test_the_attacker_recovers_nothing_from_the_public_release(network, request,
     facts = _report_facts((public / "report.html").read_text(encoding="utf-8"))
     assert set(programs["program"]) <= set(facts)
     assert any(f["hr"] is not None for f in facts.values())
+    # the figures that depend on the shared prior are published at the printed precision
+    shown = pd.read_csv(public / "programs.csv", dtype={"program": str})
+    for column, digits in PRIOR_DIGITS.items():
+        values = shown[column].dropna().to_numpy(float)
+        assert values.size and np.allclose(values, np.round(values, digits), rtol=0,
+                                           atol=1e-12), column
+    prior = json.loads((public / "run.json").read_text(encoding="utf-8"))["prior"]
+    assert all(prior[k] == float(f"{prior[k]:.2g}") for k in ("shape", "rate", "mean", "sd"))
+    assert "components" not in prior and "log_marginal" not in prior
 
 
 def test_public_files_hold_no_recipient_level_data(small_network, tmp_path):

@@ -19,7 +19,12 @@ docs/disclosure.md; in short, with threshold N:
   places a single event on its day and every published number at risk is at least N;
 - a published total (records read, kept, excluded) must not narrow a hidden cell it adds up
   to to three values or fewer: a second exclusion reason is withheld when that protects
-  the hidden one, otherwise the total is withheld.
+  the hidden one, otherwise the total is withheld; the same holds for the network's total
+  O (run.json ``network``), and flag totals are withheld with a withheld verdict;
+- figures of shown programs that depend on the shared prior, and the prior's summary, are
+  published at the report's printed precision (:data:`PRIOR_DIGITS`, :data:`PRIOR_FIGURES`);
+- across the releases of several analyses of one network, :func:`protect_releases` hides in
+  every release a shared cell or total hidden in one.
 
 The rule is written by hand because it is specific to the files of this package; the
 feasibility arithmetic it needs (intervals of whole numbers) is short.
@@ -27,12 +32,14 @@ feasibility arithmetic it needs (intervals of whole numbers) is short.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pandas as pd
 
-from casemix.errors import plural
+from casemix.errors import InputError, plural
 from casemix.evaluation.evaluate import Evaluation
 from casemix.report.plots import at_risk_times
 from casemix.report.public import corrections_by_kind, exclusions_by_reason
@@ -44,13 +51,17 @@ from casemix.survival import kaplan_meier
 __all__ = [
     "KEPT_COLUMNS",
     "MIN_SPREAD",
+    "PRIOR_DIGITS",
+    "PRIOR_FIGURES",
     "PUBLIC_FILES",
+    "SHARED_CELLS",
     "WITHHELD",
     "PublicRelease",
     "coarse_curve",
     "feasible_range",
     "hidden_candidates",
     "make_release",
+    "protect_releases",
     "protect_total",
     "protected_programs",
     "verdict_says_nothing",
@@ -69,6 +80,17 @@ PUBLIC_FILES = ("programs.csv", "followup.csv", "curves.csv", "casemix.csv",
                 "coefficients.csv", "exclusions_by_reason.csv", "corrections_by_kind.csv",
                 "out_of_range.csv")
 """The tables of a public release (run.json and report.html are written beside them)."""
+
+PRIOR_DIGITS = {"hr_mean": 2, "hr_lower": 2, "hr_upper": 2, "hr_median": 2, "weight": 2,
+                "p_above": 3, "p_below": 3}
+"""Decimals of the figures of a shown program that depend on the prior, as published. The
+prior is estimated from every program, hidden ones included, so at full precision these
+figures carry (a little) information about the hidden counts; they are published at the
+precision the report prints (docs/disclosure.md, "The shared prior")."""
+
+PRIOR_FIGURES = 2
+"""Significant figures of every number of the prior's entry in the public run.json (shape,
+rate, mean, sd, the hyperposterior's summary, the numbers of its note)."""
 
 MIN_SPREAD = 3
 """A hidden count is protected when the whole numbers a reader cannot rule out span at least
@@ -354,6 +376,9 @@ def _public_programs(data: Evaluation, n: int, log: list) -> pd.DataFrame:
             verdicts[i] = WITHHELD
             log.append((code, "verdict", "the verdict would narrow down the hidden count"))
     out["verdict"] = verdicts
+    for column, digits in PRIOR_DIGITS.items():
+        if column in out:
+            out[column] = pd.to_numeric(out[column]).round(digits)
     out["protected"] = protected.to_numpy()
     return out
 
@@ -398,17 +423,87 @@ def _public_exclusions(reasons: pd.DataFrame, excluded: float, n: int, log: list
     return reasons.assign(records=text), total_shown
 
 
+def _network_shown(data, programs: pd.DataFrame, n: int) -> bool:
+    """True when the network's total O leaves every hidden count a spread of MIN_SPREAD."""
+    observed = data.programs["observed"].to_numpy(float)
+    hidden = programs["protected"].to_numpy(bool)
+    ranges = [hidden_candidates(o, r, n) if h else np.array([v])
+              for o, r, h, v in zip(programs["observed"], programs["recipients"], hidden,
+                                    observed, strict=True)]
+    lower = np.array([float(c.min()) if c.size else 0.0 for c in ranges])
+    upper = np.array([float(c.max()) if c.size else np.inf for c in ranges])
+    return _total_is_safe(float(observed.sum()), observed, hidden, lower, upper)
+
+
+def _public_multiplicity(many: dict | None, programs: pd.DataFrame, data, log: list
+                         ) -> dict | None:
+    """run.json ``multiplicity`` with the sums that would give back a hidden figure withheld.
+
+    The number of flags minus the flags shown gives a withheld verdict, so the entry is
+    withheld whole then (the caution on expected false flags still says how many to expect);
+    the posterior expected wrong flags sum 1 - P(HR > margin) over the flagged programs, a
+    function of their O.
+    """
+    if not many:
+        return many
+    if (programs["verdict"] == WITHHELD).any():
+        log.append(("network", "number of programs flagged and expected false flags",
+                    "the flags minus the verdicts shown would give back a withheld verdict"))
+        return None
+    out = dict(many)
+    flagged = data.programs["verdict"].isin(["excess", "favorable"]).to_numpy()
+    if (flagged & programs["protected"].to_numpy(bool)).any():
+        out["posterior_expected_wrong_flags"] = None
+        log.append(("network", "posterior expected number of wrong flags",
+                    "it sums a probability of a protected program, a function of its count"))
+    return out
+
+
+def _significant(value: float) -> float:
+    return float(f"{value:.{PRIOR_FIGURES}g}")
+
+
+def _coarse(value):
+    """Every float in a run.json value (nested lists and objects) to PRIOR_FIGURES figures."""
+    if isinstance(value, dict):
+        return {k: _coarse(v) for k, v in value.items()}
+    if isinstance(value, list):
+        return [_coarse(v) for v in value]
+    if isinstance(value, float) and np.isfinite(value):
+        return _significant(value)
+    return value
+
+
+def _coarse_prior(prior: dict) -> dict:
+    """The prior's summary to PRIOR_FIGURES significant figures (shape, rate, mean, sd, the
+    hyperposterior's summary and the numbers of the note); no components, no likelihood."""
+    out = _coarse({k: v for k, v in prior.items() if k not in ("log_marginal", "components")})
+    if isinstance(out.get("note"), str):
+        out["note"] = re.sub(r"\d+\.\d+(?:e[-+]?\d+)?",
+                             lambda m: f"{_significant(float(m[0])):g}", out["note"])
+    return out
+
+
 def _public_run(run: dict, n: int, kept_shown: bool, excluded_shown: bool,
-                corrected_shown: bool) -> dict:
+                corrected_shown: bool, network_shown: bool, multiplicity: dict | None
+                ) -> dict:
     public = {k: v for k, v in run.items() if k != "inputs"}
+    if "multiplicity" in run:
+        public["multiplicity"] = multiplicity
+    network = run.get("network")
+    if not network_shown and isinstance(network, dict):
+        # the total O, and every figure it follows from (O/E with E, the exact limits and
+        # test): null; a caution that quotes them is left out with them
+        public["network"] = None
+        quoted = f"{network['oe_lower']:.2f} to {network['oe_upper']:.2f}"
+        public["cautions"] = [c for c in run.get("cautions", []) if quoted not in str(c)]
     inputs = run.get("inputs") or {}
     if isinstance(inputs, dict):
         public["inputs"] = {k: {"sha256": v.get("sha256")} for k, v in inputs.items()
                             if isinstance(v, dict)}
     # The marginal likelihood and the mixture's components are functions of every program's
     # counts, hidden ones included: only the prior's summary is published.
-    public["prior"] = {k: v for k, v in run["prior"].items()
-                       if k not in ("log_marginal", "components")}
+    public["prior"] = _coarse_prior(run["prior"])
     counts = dict(run["counts"])
     # Per kind and per reason they are in corrections_by_kind.csv and exclusions_by_reason.csv,
     # protected there.
@@ -463,6 +558,12 @@ def make_release(data: Evaluation, n: int) -> PublicRelease:
     if not excluded_shown:
         log.append(("network", "records excluded and records read",
                     "the total minus the reasons shown would give back a hidden count"))
+    network_shown = _network_shown(data, programs, n)
+    if not network_shown:
+        log.append(("network", "observed and expected events of the whole network, its O/E, "
+                               "limits and exact test",
+                    "the network's total minus the programs shown would give back a hidden "
+                    "count"))
     corrected_shown = True
     if data.corrections is not None:
         kinds, corrected_shown = _public_exclusions(
@@ -499,6 +600,114 @@ def make_release(data: Evaluation, n: int) -> PublicRelease:
         threshold=n,
         programs=programs,
         tables=tables,
-        run=_public_run(data.run, n, kept_shown, excluded_shown, corrected_shown),
+        run=_public_run(data.run, n, kept_shown, excluded_shown, corrected_shown,
+                        network_shown, _public_multiplicity(data.run.get("multiplicity"),
+                                                            programs, data, log)),
         withheld=pd.DataFrame(log, columns=["scope", "figure", "reason"]),
     )
+
+
+SHARED_CELLS = {
+    "programs.csv": ("program", ("recipients",)),
+    "followup.csv": ("program", ("recipients", "lost_to_followup")),
+    "exclusions_by_reason.csv": ("reason", ("records",)),
+    "corrections_by_kind.csv": ("correction", ("records",)),
+}
+"""Per table, its key column and the count columns that several analyses of one network
+share (the same cohort gives the same recipients, exclusions and corrections)."""
+
+_SHARED_TOTALS = ("read", "kept", "excluded", "corrected")
+
+
+def _hidden_in(releases: Mapping[str, PublicRelease], name: str, key: str,
+               column: str) -> dict:
+    """Key -> the first analysis whose release hides the cell (any text but a count)."""
+    out: dict = {}
+    for analysis, release in releases.items():
+        table = release.tables.get(name)
+        if table is None or column not in table:
+            continue
+        for k, text in zip(table[key], table[column], strict=True):
+            if text is not None and not str(text).isdigit():
+                out.setdefault(k, analysis)
+    return out
+
+
+def _align(table: pd.DataFrame, key: str, column: str, hidden: dict, analysis: str,
+           what: str, log: list) -> pd.DataFrame:
+    # a count shown here is not the small count hidden there: it shows as "withheld"
+    texts = table[column].astype(object).to_numpy().copy()
+    for i, k in enumerate(table[key]):
+        if k in hidden and str(texts[i]).isdigit():
+            texts[i] = WITHHELD
+            log.append((str(k), what, f"hidden in the analysis {hidden[k]} of the same "
+                                      "network, which this one would give back"))
+    return table.assign(**{column: texts})
+
+
+def protect_releases(releases: Mapping[str, PublicRelease]) -> dict[str, PublicRelease]:
+    """Complementary suppression across the public releases of several analyses.
+
+    The analyses (outcomes, horizons) of one network share counts: the recipients of a
+    program, the records excluded per reason and corrected per kind, the totals read, kept,
+    excluded and corrected. Each release protects its own totals; but a cell one release
+    withholds (a small count, or a second cell withheld so that a total does not give the
+    first back) must not be shown by another. So every shared cell hidden in one release is
+    hidden in all, and a shared total withheld in one is withheld in all. Hiding more cells
+    of a total only widens what a reader can infer of each, so the totals each release kept
+    stay safe.
+
+    Parameters
+    ----------
+    releases : mapping of str -> PublicRelease
+        The releases, by analysis name (from :func:`make_release`, one threshold).
+
+    Returns
+    -------
+    dict of str -> PublicRelease
+        The releases with the shared cells aligned; their ``withheld`` lists say which cells
+        were hidden because another analysis hides them.
+
+    Raises
+    ------
+    InputError
+        When there is no release, or the releases use different thresholds.
+    """
+    if not releases:
+        raise InputError("protect_releases needs at least one release.")
+    thresholds = {name: r.threshold for name, r in releases.items()}
+    if len(set(thresholds.values())) > 1:
+        raise InputError(
+            "the releases of one network must use one threshold; got "
+            + ", ".join(f"{name}: {n}" for name, n in thresholds.items()) + ".")
+    hidden = {(name, column): _hidden_in(releases, name, key, column)
+              for name, (key, columns) in SHARED_CELLS.items() for column in columns}
+    withheld_totals: dict[str, str] = {}
+    for name, release in releases.items():
+        for total in _SHARED_TOTALS:
+            if total in release.run["counts"] and release.run["counts"][total] is None:
+                withheld_totals.setdefault(total, name)
+    out = {}
+    for analysis, release in releases.items():
+        log: list[tuple[str, str, str]] = []
+        tables = dict(release.tables)
+        for name, (key, columns) in SHARED_CELLS.items():
+            for column in columns:
+                if name in tables and column in tables[name]:
+                    tables[name] = _align(tables[name], key, column, hidden[(name, column)],
+                                          analysis, f"{column} in {name}", log)
+        counts = dict(release.run["counts"])
+        for total, where in withheld_totals.items():
+            if counts.get(total) is not None:
+                counts[total] = None
+                log.append(("network", f"records {total}",
+                            f"withheld in the analysis {where} of the same network"))
+        programs = release.programs.assign(recipients=tables["programs.csv"]["recipients"]
+                                           .to_numpy())
+        out[analysis] = replace(
+            release, programs=programs, tables=tables,
+            run={**release.run, "counts": counts},
+            withheld=pd.concat([release.withheld,
+                                pd.DataFrame(log, columns=["scope", "figure", "reason"])],
+                               ignore_index=True))
+    return out

@@ -8,6 +8,8 @@ report's own sections.
 
 from __future__ import annotations
 
+from dataclasses import replace
+
 import pandas as pd
 from markupsafe import Markup
 
@@ -228,6 +230,29 @@ def _data_quality(release: PublicRelease) -> Section:
                                        + Markup(table)), anchor="data-quality")
 
 
+_RUN_FACTS = {
+    "read": "records read", "kept": "recipients kept", "excluded": "records excluded",
+    "corrected": "records kept with a correction",
+}
+
+
+def _evaluated_note(release: PublicRelease) -> Markup:
+    """Say in words which facts of "What was evaluated" show MISSING because withheld."""
+    counts, run = release.run["counts"], release.run
+    gone = [what for key, what in _RUN_FACTS.items() if key in counts and counts[key] is None]
+    if "network" in run and run["network"] is None:
+        gone.append("the whole network's events, O/E and exact test")
+    if "multiplicity" in run and run["multiplicity"] is None:
+        gone.append("the expected false flags and the number of programs flagged")
+    if not gone:
+        return Markup("")
+    return Markup(
+        '<p class="note">“{}” above marks a figure withheld under the disclosure rule: {}. '
+        "Each is a total (or follows from one) that, minus the figures shown, would give back "
+        "a hidden count or a withheld verdict; the last part of this report lists why, "
+        "figure by figure.</p>").format(MISSING, "; ".join(gone))
+
+
 def _withheld(release: PublicRelease) -> Section:
     n = release.threshold
     intro = Markup(
@@ -242,6 +267,10 @@ def _withheld(release: PublicRelease) -> Section:
                                                   "reason": "Why"})
     return Section("What this public release withholds", str(intro + Markup(table)),
                    anchor="withheld")
+
+
+def _with_note(section: Section, note: Markup) -> Section:
+    return replace(section, html=str(Markup(section.html) + note))
 
 
 def render_public_report(release: PublicRelease, *, log_expected: bool = False) -> str:
@@ -262,7 +291,7 @@ def render_public_report(release: PublicRelease, *, log_expected: bool = False) 
     data = public_folder(release)
     options = ReportOptions(suppress_below=release.threshold, log_expected=log_expected)
     sections = [
-        evaluated_section(data, options),
+        _with_note(evaluated_section(data, options), _evaluated_note(release)),
         _glance(release),
         _scale(release, log_expected),
         _each_program(release),
