@@ -39,6 +39,7 @@ DEMO_FILES = [
     "monitoring.json", "monitoring.html",
 ]
 EVALUATION_FILES = ["programs.csv", "recipients.csv", "exclusions.csv", "run.json"]
+PLAN = ["graft_30d", "death_30d", "graft_1y", "death_1y", "graft_3y", "death_3y"]
 COMMANDS = ["demo", "check", "fit", "evaluate", "report", "audit", "monitor"]
 REFERENCE_CUTOFF, COHORT_CUTOFF = "2022-12-31", "2025-06-30"
 CHECK_SHOWN = 20  # excluded records `casemix check` prints (the rest go to --out)
@@ -158,10 +159,14 @@ def _extract(demo_dir: Path, folder: Path, name: str, edit=None, rows: int = 120
 # --- demo -------------------------------------------------------------------------------
 
 
-def test_demo_writes_every_file_into_one_flat_folder(demo_dir, demo_run):
+def test_demo_writes_its_files_flat_and_the_study_plan_in_two_folders(demo_dir, demo_run):
     for name in DEMO_FILES:
         assert (demo_dir / name).is_file(), name
-    assert not [p for p in demo_dir.iterdir() if p.is_dir()]
+    assert sorted(p.name for p in demo_dir.iterdir() if p.is_dir()) == ["models", "study"]
+    assert (demo_dir / "models" / "index.json").is_file()
+    for name in PLAN:
+        assert (demo_dir / "study" / name / "programs.csv").is_file(), name
+    assert (demo_dir / "study" / "overview.csv").is_file()
     output = demo_run[1].output
     for code in PROGRAMS:
         assert code in output
@@ -169,6 +174,12 @@ def test_demo_writes_every_file_into_one_flat_folder(demo_dir, demo_run):
     assert "not a finding about quality of care" in output
     # not a terminal: the progress bar stays quiet
     assert "fitting the reference model" not in output
+    assert "graft_3y: graft failure within 1095 days, cohort 2022-01-01 to 2022-12-31" in output
+
+
+def test_demo_plan_one_year_graft_failure_is_the_flat_analysis(demo_dir):
+    flat = (demo_dir / "programs.csv").read_bytes()
+    assert (demo_dir / "study" / "graft_1y" / "programs.csv").read_bytes() == flat
 
 
 def test_demo_recovers_the_true_hazard_ratios(demo_dir, network):
@@ -805,3 +816,61 @@ def test_usage_lines_name_arguments_in_capitals(command):
     usage = invoke(command, "--help").output.splitlines()[0]
     assert usage.startswith(f"Usage: casemix {command} [OPTIONS]")
     assert not re.search(r"\{[a-z_]+\}", usage), usage
+
+
+# --- the study plan -----------------------------------------------------------------------
+
+
+@pytest.fixture(scope="module")
+def plan_models(demo_dir, tmp_path_factory) -> tuple[Path, Result]:
+    folder = tmp_path_factory.mktemp("cli") / "models"
+    return folder, invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                          "--cutoff", REFERENCE_CUTOFF, "--out", folder)
+
+
+def test_fit_without_an_outcome_fits_every_analysis_of_the_plan(plan_models):
+    folder, result = plan_models
+    assert_exit(result, 0, r"graft_3y: graft_failure at 1095 days, reference 2017-01-01 to "
+                           r"2021-12-31, .* -> graft_failure_1095d\.json",
+                f"models and index.json written to {re.escape(str(folder))}")
+    assert sorted(p.name for p in folder.iterdir()) == sorted(
+        ["index.json", *(f"{o}_{h}d.json" for o in ("graft_failure", "death")
+                         for h in (30, 365, 1095))])
+
+
+def test_evaluate_with_a_models_folder_runs_every_analysis(plan_models, demo_dir, tmp_path):
+    folder, _ = plan_models
+    out = tmp_path / "study"
+    result = invoke("evaluate", demo_dir / "cohort.csv", "--model", folder, "--rules",
+                    demo_dir / "rules.toml", "--cutoff", COHORT_CUTOFF, "--no-report",
+                    "--out", out)
+    assert_exit(result, 0, r"graft_30d: graft failure within 30 days, cohort 2023-06-02 to "
+                           r"2025-05-31", r"excess: .*LV08", "not a finding about quality")
+    assert sorted(p.name for p in out.iterdir()) == sorted(
+        [*PLAN, "overview.csv", "recipients.csv", "study.json"])
+    for name in PLAN:
+        for table in EVALUATION_FILES:
+            assert (out / name / table).is_file(), (name, table)
+    overview = pd.read_csv(out / "overview.csv")
+    assert list(overview["analysis"].unique()) == PLAN
+    assert (out / "graft_1y" / "programs.csv").read_bytes() == (
+        demo_dir / "programs.csv").read_bytes()
+
+
+def test_plan_runs_refuse_options_of_one_analysis(plan_models, demo_dir, tmp_path):
+    folder, _ = plan_models
+    assert_exit(invoke("fit", demo_dir / "reference.csv", "--spec", demo_dir / "spec.toml",
+                       "--horizon", 365, "--out", tmp_path / "m"), 2,
+                "--horizon apply to one analysis")
+    assert_exit(invoke("evaluate", demo_dir / "cohort.csv", "--model", folder, "--from",
+                       "2023-01-01", "--out", tmp_path / "s"), 2,
+                "--from/--to apply to one analysis")
+
+
+def test_fit_without_an_outcome_or_a_plan_says_what_to_add(demo_dir, tmp_path):
+    spec = tmp_path / "spec.toml"
+    text = (demo_dir / "spec.toml").read_text(encoding="utf-8")
+    spec.write_text(text[:text.index("[analyses.")], encoding="utf-8")
+    assert_exit(invoke("fit", demo_dir / "reference.csv", "--spec", spec, "--cutoff",
+                       REFERENCE_CUTOFF, "--out", tmp_path / "m"), 1,
+                r"has no study plan: add \[analyses\.NAME\]")

@@ -34,6 +34,7 @@ EXAMPLE = Path(__file__).resolve().parents[1] / "examples" / "lorran_valley"
 EVENTS = ["graft_loss_date", "retransplant_date", "death_date"]
 HARD, FAVORABLE, HIDDEN_EXCESS = "LV03", "LV04", "LV05"
 RISING = demo.RISE.program
+LATE = demo.LATE.program
 SMALL = ("LV09", "LV14")
 
 
@@ -244,7 +245,7 @@ def test_truth_table(network):
     truth = network.truth.set_index("program")
     assert list(network.truth.columns) == [
         "program", "true_hr", "recipients_reference", "recipients_cohort", "story",
-        "reference_hr", "rise_from", "rise_factor",
+        "reference_hr", "rise_from", "rise_factor", "late_from_day", "late_factor",
     ]
     for role in ("reference", "cohort"):
         counts = getattr(network, role)["program"].value_counts()
@@ -262,6 +263,10 @@ def test_truth_table(network):
     rising = truth[truth["rise_factor"] != 1.0]
     assert list(rising.index) == [RISING] and rising["rise_factor"].item() == 2.0
     assert rising["rise_from"].item() == demo.RISE.start.isoformat()
+    late = truth[truth["late_factor"] != 1.0]
+    assert list(late.index) == [LATE] and late["late_factor"].item() == 4.0
+    assert late["late_from_day"].item() == demo.LATE.after_days == 365
+    assert truth["late_from_day"].drop(LATE).isna().all()
 
 
 def test_windows_and_cutoffs(network):
@@ -394,9 +399,9 @@ def test_lifelines_cox_recovers_program_hazard_ratios(network):
     data = _simple_encoding(frame).join(programs)
     data = data.join(_graft_failure(frame, _cutoff(network, "cohort"))).dropna()
     # Reference library: lifelines CoxPHFitter; LV01 (true HR 1.0) is the reference program.
-    # The rising program's hazard ratio changes in time (see the next test).
+    # The rising and the late programs' hazard ratios change in time (see the next tests).
     fit = lifelines().CoxPHFitter().fit(data, "time", "event")
-    truth = np.log(network.truth.set_index("program")["true_hr"].drop(["LV01", RISING]))
+    truth = np.log(network.truth.set_index("program")["true_hr"].drop(["LV01", RISING, LATE]))
     z = (fit.params_[truth.index] - truth) / fit.standard_errors_[truth.index]
     assert z.abs().max() < 3.0, z.round(2).to_dict()
     assert fit.params_[HIDDEN_EXCESS] - 2 * fit.standard_errors_[HIDDEN_EXCESS] > 0
@@ -432,10 +437,41 @@ def test_rising_program_doubles_its_hazard_from_the_rise_date(network):
     assert fit.params_["rising_after"] - 2 * fit.standard_errors_["rising_after"] > 0
 
 
-def test_the_rise_leaves_every_other_record_as_it_was(network, monkeypatch):
-    """The records drawn without the rise are the same except the rising program's later
-    graft-loss dates; the rise's own generator is the only thing that differs."""
-    monkeypatch.setattr(demo, "RISE", dataclasses.replace(demo.RISE, factor=1.0))
+def test_late_program_quadruples_its_hazard_after_the_first_year(network):
+    """Follow-up split at day 365 after each transplant (counting process, delayed entry); a
+    Cox fit (lifelines CoxPHFitter, entry_col) of the clean cohort with the generator's
+    covariates, program terms, and a term for the late program after day 365."""
+    frame = _clean(network, "cohort")
+    outcome = _graft_failure(frame, _cutoff(network, "cohort"))
+    covariates = _simple_encoding(frame).assign(program=frame["program"]).join(outcome)
+    covariates = covariates.dropna()
+    day = float(demo.LATE.after_days)
+    before = covariates.assign(entry=0.0, stop=np.minimum(covariates["time"], day), after=0.0)
+    before["event"] = before["event"] * (covariates["time"] <= day)
+    after = covariates[covariates["time"] > day].assign(entry=day, stop=covariates["time"],
+                                                        after=1.0)
+    pieces = pd.concat([before[before["stop"] > 0], after])
+    pieces["late_after"] = pieces["after"] * (pieces["program"] == LATE)
+    # (the rising program's change in calendar time is not modelled: only the late
+    # program's terms are checked)
+    dummies = pd.get_dummies(pieces["program"], dtype=float).drop(columns="LV01")
+    data = pieces.drop(columns=["program", "time", "after"]).join(dummies)
+    fit = lifelines().CoxPHFitter().fit(data, "stop", "event", entry_col="entry")
+    # truth: the program's hazard ratio is true_hr in the first year, four times that later
+    true_hr = network.truth.set_index("program").loc[LATE, "true_hr"]
+    z_first = (fit.params_[LATE] - np.log(true_hr)) / fit.standard_errors_[LATE]
+    z_late = (fit.params_["late_after"] - np.log(demo.LATE.factor)) / fit.standard_errors_[
+        "late_after"]
+    assert abs(z_first) < 3.0 and abs(z_late) < 3.0, (z_first, z_late)
+    assert fit.params_["late_after"] - 2 * fit.standard_errors_["late_after"] > 0
+
+
+@pytest.mark.parametrize("story", ["RISE", "LATE"])
+def test_each_planted_change_leaves_every_other_record_as_it_was(network, monkeypatch, story):
+    """The records drawn without the rise (or without the late excess) are the same except
+    that program's later graft-loss dates; its own generator is the only thing that differs."""
+    change = getattr(demo, story)
+    monkeypatch.setattr(demo, story, dataclasses.replace(change, factor=1.0))
     without = demo.generate()
     monkeypatch.undo()
     pd.testing.assert_frame_equal(without.reference, network.reference)
@@ -444,9 +480,14 @@ def test_the_rise_leaves_every_other_record_as_it_was(network, monkeypatch):
                != network.cohort.astype(str).where(network.cohort.notna(), "-"))
     rows = changed.any(axis=1)
     assert rows.sum() > 10
-    assert set(network.cohort.loc[rows, "program"]) == {RISING}
+    assert set(network.cohort.loc[rows, "program"]) == {change.program}
     assert list(changed.columns[changed.any()]) == ["graft_loss_date"]
-    assert (network.cohort.loc[rows, "graft_loss_date"] >= pd.Timestamp(demo.RISE.start)).all()
+    loss = network.cohort.loc[rows, "graft_loss_date"]
+    if story == "RISE":
+        assert (loss >= pd.Timestamp(demo.RISE.start)).all()
+    else:
+        days = (loss - network.cohort.loc[rows, "transplant_date"]).dt.days
+        assert (days >= demo.LATE.after_days).all()
 
 
 def test_raw_one_year_failure_tells_the_stories(network):

@@ -214,6 +214,38 @@ def test_own_extract_command_runs_on_the_demo_files(own_extract_runs, demo_folde
         assert (demo_folder[0] / product).is_file(), product
 
 
+PLAN = "A whole periodic evaluation: the study plan"
+
+
+@pytest.mark.slow
+def test_plan_commands_run_on_the_demo_files(demo_folder):
+    folder, done = demo_folder
+    assert done.returncode == 0, done.stderr
+    (block,) = bash_blocks(section(PLAN))
+    ran = [run([str(CASEMIX), *shlex.split(c)[1:]], folder) for c in commands(block)]
+    assert [shlex.split(c)[:2] for c in commands(block)] == [["casemix", "fit"],
+                                                             ["casemix", "evaluate"]]
+    for done in ran:
+        assert done.returncode == 0 and "Traceback" not in done.stderr, done.stderr
+    out = folder / _option(commands(block)[1], "--out")
+    assert (folder / _option(commands(block)[0], "--out") / "index.json").is_file()
+    for product in ("overview.csv", "recipients.csv", "study.json", "graft_3y/programs.csv",
+                    "graft_3y/report.html"):
+        assert (out / product).is_file(), product
+
+
+def test_plan_python_section_runs(demo_folder, tmp_path):
+    (block,) = python_blocks(section(PLAN))
+    folder, done = demo_folder
+    assert done.returncode == 0, done.stderr
+    for name in ("reference.csv", "cohort.csv", "spec.toml", "rules.toml"):
+        (tmp_path / name).write_bytes((folder / name).read_bytes())
+    ran = run([sys.executable, "-c", block], tmp_path)
+    assert ran.returncode == 0, ran.stderr
+    for product in ("models/index.json", "study/overview.csv", "study/death_3y/run.json"):
+        assert (tmp_path / product).is_file(), product
+
+
 def python_blocks(text: str) -> list[str]:
     return re.findall(r"^```python\n(.*?)^```", text, re.M | re.S)
 

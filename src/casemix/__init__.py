@@ -27,8 +27,12 @@ _PUBLIC = {
     "load_spec": "casemix.data.spec",
     "Evaluation": "casemix.evaluation.evaluate",
     "evaluate": "casemix.evaluation.evaluate",
+    "Study": "casemix.evaluation.study",
+    "evaluate_plan": "casemix.evaluation.study",
     "ReferenceModel": "casemix.model.reference",
     "fit_reference": "casemix.model.reference",
+    "PlanModels": "casemix.model.plan",
+    "fit_plan": "casemix.model.plan",
     "Monitoring": "casemix.monitoring.monitor",
     "MonitoringRules": "casemix.monitoring.rules",
     "monitor": "casemix.monitoring.monitor",
@@ -47,6 +51,8 @@ if TYPE_CHECKING:
     from casemix.data.records import Records, read_records
     from casemix.data.spec import Spec, load_spec
     from casemix.evaluation.evaluate import Evaluation, evaluate
+    from casemix.evaluation.study import Study, evaluate_plan
+    from casemix.model.plan import PlanModels, fit_plan
     from casemix.model.reference import ReferenceModel, fit_reference
     from casemix.monitoring.monitor import Monitoring, monitor
     from casemix.monitoring.rules import MonitoringRules
@@ -86,15 +92,19 @@ __all__ = [
     "Evaluation",
     "Monitoring",
     "MonitoringRules",
+    "PlanModels",
     "Prior",
     "Records",
     "ReferenceModel",
     "Rules",
     "Spec",
+    "Study",
     "__version__",
     "build_cohort",
     "empirical_bayes_prior",
     "evaluate",
+    "evaluate_plan",
+    "fit_plan",
     "fit_reference",
     "fixed_prior",
     "load_rules",

@@ -282,8 +282,15 @@ def _print_counts(title: str, frame: pd.DataFrame, key: str) -> None:
 def fit(
     records: ExistingFile,
     spec: SpecOption,
-    outcome: Annotated[str, typer.Option("--outcome", help="An outcome named in the spec.")],
-    out_path: Annotated[Path, typer.Option("--out", dir_okay=False, help="Model file (.json).")],
+    out_path: Annotated[
+        Path, typer.Option("--out", help="Model file (.json) with --outcome; else the folder "
+                                         "of the plan's models.")
+    ],
+    outcome: Annotated[
+        str | None,
+        typer.Option("--outcome", help="An outcome named in the spec: fit that one model. "
+                                       "Without it, every analysis of the spec's [analyses]."),
+    ] = None,
     horizon: Annotated[
         int | None,
         typer.Option("--horizon", min=1,
@@ -298,8 +305,14 @@ def fit(
 ) -> None:
     """Fit a reference model on a reference population and save it as JSON.
 
+    Without --outcome, fit the models of every analysis of the spec's study plan
+    ([analyses]): one per outcome, horizon and reference window, saved into the --out folder
+    with index.json.
+
     Example: casemix fit reference.csv --spec spec.toml --outcome graft_failure
     --horizon 365 --cutoff 2022-12-31 --out model.json
+
+    Example: casemix fit reference.csv --spec spec.toml --cutoff 2022-12-31 --out models
     """
     from casemix.data.cohort import apply_window
     from casemix.data.records import read_records
@@ -307,6 +320,10 @@ def fit(
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
+    if outcome is None:
+        _plan_only_options(horizon=horizon, window=window)
+        _fit_plan(records, spec, out_path, cut, ties.value)
+        return
     with _guarded(), _steps(2) as step:
         data = read_records(records, spec, cutoff=cut)
         step("fitting the reference model")
@@ -332,15 +349,69 @@ def fit(
     out.print(f"model written to {out_path}")
 
 
+def _plan_only_options(**given) -> None:
+    """Refuse single-analysis options in a plan run (each analysis sets its own)."""
+    named = {"horizon": "--horizon", "window": "--from/--to"}
+    used = [named[k] for k, v in given.items() if v not in (None, (None, None))]
+    if used:
+        err.print(
+            f"error: {' and '.join(used)} apply to one analysis; a study plan sets the horizon "
+            "and the windows of each analysis in the spec's [analyses] (or give --outcome, or "
+            "a single --model file)",
+            markup=False,
+        )
+        raise typer.Exit(2)
+
+
+def _fit_plan(records: Path, spec_path: Path, folder: Path, cutoff, ties: str) -> None:
+    from casemix.data.records import read_records
+    from casemix.data.spec import load_spec
+    from casemix.model.plan import fit_plan, plan_of
+
+    with _guarded():
+        spec = load_spec(spec_path)
+        plan = plan_of(spec)
+        distinct = {(a.outcome, a.horizon_days, a.reference_window) for a in plan}
+        with _steps(len(distinct) + 2) as step:
+            data = read_records(records, spec, cutoff=cutoff)
+            step("reading records")
+            models = fit_plan(data, spec, cutoff=cutoff, ties=ties, progress=step).save(folder)
+            step("saved")
+    _plan_fit_summary(models, data)
+
+
+def _plan_fit_summary(models, data) -> None:
+    out.print(f"{plural(data.n_read, 'record')} read, {len(data.exclusions)} excluded by the "
+              "record checks", markup=False)
+    shown = set()
+    for name, model in models.models.items():
+        file = models.files[name]
+        fit_ = model.fit
+        again = " (shared)" if file in shown else ""
+        shown.add(file)
+        out.print(
+            f"{name}: {model.outcome} at {model.horizon_days} days, reference "
+            f"{_window_words(model.window)}, {plural(fit_.n, 'recipient')}, "
+            f"{plural(fit_.n_events, 'event')}, concordance {model.concordance:.3f} -> "
+            f"{file}{again}",
+            markup=False,
+        )
+    out.print(f"models and index.json written to {models.folder}")
+
+
 def _window_words(window) -> str:
-    start, end = (None if d is None else d.isoformat() for d in window)
+    start, end = (None if d is None else str(d) for d in window)
     return f"{start or 'any'} to {end or 'any'}"
 
 
 @app.command()
 def evaluate(
     records: ExistingFile,
-    model: ModelOption,
+    model: Annotated[
+        Path, typer.Option("--model", exists=True,
+                           help="Reference model (.json), or a folder of models written by "
+                                "`casemix fit` for the study plan: every analysis is run.")
+    ],
     out_dir: OutDirOption,
     rules: Annotated[
         Path | None,
@@ -363,25 +434,34 @@ def evaluate(
 ) -> None:
     """Evaluate every program of a cohort against a reference model; write the evaluation files.
 
-    Outcome and horizon come from the model file.
+    Outcome and horizon come from the model file. With a folder of models (`casemix fit`
+    without --outcome), every analysis of the study plan is evaluated with its own cohort
+    window: the --out folder gets one sub-folder per analysis in the same format, plus
+    overview.csv (one row per program and analysis), recipients.csv and study.json.
 
     Example: casemix evaluate cohort.csv --model model.json --rules rules.toml
     --cutoff 2025-06-30 --out results
+
+    Example: casemix evaluate cohort.csv --model models --rules rules.toml
+    --cutoff 2025-06-30 --out study
     """
     from casemix.evaluation.evaluate import evaluate as run_evaluation
 
     cut = _date(cutoff, "--cutoff")
     window = (_date(window_from, "--from"), _date(window_to, "--to"))
     chosen = _prior(prior)
+    if model.is_dir():
+        _plan_only_options(window=window)
+        study = _evaluate_plan(records, model, rules, chosen, cut, out_dir, report)
+        _plan_summary(study, out_dir, report)
+        return
     with _guarded(), _steps(2 + report) as step:
         step("evaluating programs")
         result = run_evaluation(
             records,
             model,
             rules,
-            prior=None if chosen is None or isinstance(chosen, tuple) else chosen,
-            prior_method=chosen[0] if isinstance(chosen, tuple) else None,
-            free_mean=chosen[1] if isinstance(chosen, tuple) else None,
+            **_prior_options(chosen),
             cutoff=cut,
             window=None if window == (None, None) else window,
         )
@@ -392,6 +472,65 @@ def evaluate(
             _write_report(out_dir)
         step("done")
     _summary(result, out_dir, report)
+
+
+def _prior_options(chosen) -> dict:
+    """``prior``, ``prior_method`` and ``free_mean`` of evaluate from a parsed --prior."""
+    pair = isinstance(chosen, tuple)
+    return {"prior": None if chosen is None or pair else chosen,
+            "prior_method": chosen[0] if pair else None,
+            "free_mean": chosen[1] if pair else None}
+
+
+def _evaluate_plan(records, models_folder: Path, rules, chosen, cutoff, out_dir: Path,
+                   report: bool):
+    from casemix.evaluation.study import evaluate_plan
+    from casemix.model.plan import PlanModels
+
+    with _guarded():
+        models = PlanModels.load(models_folder)
+        with _steps(len(models) * (1 + report) + 2) as step:
+            options = _prior_options(chosen)
+            study = evaluate_plan(records, models, rules, options.pop("prior"), cutoff=cutoff,
+                                  progress=step, **options)
+            step("writing files")
+            study.save(out_dir)
+            if report:
+                for name in study:
+                    step(f"report of {name}")
+                    _write_report(out_dir / name)
+            step("done")
+    return study
+
+
+def _plan_summary(study, folder: Path, report: bool) -> None:
+    """Per analysis: what was evaluated, then the programs given a verdict other than consistent
+    (the whole table, one row per program and analysis, is overview.csv)."""
+    for name in study:
+        evaluation = study[name]
+        entry, counts = evaluation.run["analysis"], evaluation.run["counts"]
+        start, end = entry["cohort_window"]
+        out.print(
+            f"{name}: {entry['outcome'].replace('_', ' ')} within {entry['horizon_days']} days,"
+            f" cohort {start} to {end}, {plural(counts['kept'], 'recipient')}; reference "
+            f"{_window_words(entry['reference_window'])}"
+            + (" (overlaps the cohort window)" if entry["reference_overlaps_cohort"] else ""),
+            markup=False,
+        )
+        programs = evaluation.programs
+        for verdict in ("excess", "favorable", "too_little_data"):
+            rows = programs[programs["verdict"] == verdict]
+            if len(rows):
+                listed = ", ".join(f"{r.program} (HR {r.hr_mean:.2f})"
+                                   for r in rows.itertuples(index=False))
+                out.print(f"  {verdict.replace('_', ' ')}: {listed}", markup=False)
+    out.print(
+        "A statistical indicator, not a finding about quality of care; small programs are "
+        "uncertain; decisions belong to clinical review."
+    )
+    out.print(f"study written to {folder}: one folder per analysis, overview.csv (every "
+              "program and analysis), recipients.csv (cohort membership)"
+              + ("; a report.html in each analysis folder" if report else ""))
 
 
 def _write_report(folder: Path, out_file: Path | None = None, suppress_below=None, audit=None):
@@ -674,55 +813,67 @@ def demo(
     """Run the whole job on the invented Lorran Valley demo network.
 
     Writes reference.csv, cohort.csv, spec.toml, rules.toml, model.json and the evaluation
-    files with report.html into the folder, then the monitoring files (monitoring_*.csv,
-    monitoring.json, monitoring.html), and prints a summary.
+    files of one-year graft failure with report.html into the folder, then the monitoring
+    files (monitoring_*.csv, monitoring.json, monitoring.html), then the study plan of the
+    spec (graft failure and death at 30, 365 and 1095 days): its models in models/ and its
+    evaluation in study/ (one folder per analysis, overview.csv); prints a summary.
 
     Example: casemix demo --out demo_out
     """
     from casemix import demo as scenario
-    from casemix.data.records import read_records
-    from casemix.evaluation.evaluate import evaluate as run_evaluation
-    from casemix.model.reference import fit_reference
+    from casemix.data.spec import load_spec
 
-    with _guarded(), _steps(6) as step:
+    with _guarded():
         paths = scenario.write_demo(out_dir, seed=seed)
-        step("fitting the reference model")
-        reference = read_records(
-            paths["reference"], paths["spec"], cutoff=scenario.REFERENCE_CUTOFF
-        )
-        model = fit_reference(
-            reference,
-            reference.spec,
-            "graft_failure",
-            365,
-            scenario.REFERENCE_CUTOFF,
-            window=scenario.REFERENCE_WINDOW,
-        )
-        model.save(out_dir / "model.json")
-        step("evaluating programs")
-        cohort = read_records(paths["cohort"], paths["spec"], cutoff=scenario.COHORT_CUTOFF)
-        result = run_evaluation(
-            cohort,
-            out_dir / "model.json",
-            paths["rules"],
-            cutoff=scenario.COHORT_CUTOFF,
-            window=scenario.COHORT_WINDOW,
-        )
-        step("writing files")
-        result.save(out_dir)
-        step("writing the report")
-        _write_report(out_dir)
-        step("monitoring programs")
-        monitoring = _monitor_files(cohort, out_dir / "model.json", scenario.COHORT_WINDOW[0],
-                                    scenario.COHORT_CUTOFF, paths["rules"], out_dir)
-        step("done")
+        plan = load_spec(paths["spec"]).analyses
+        fits = {(a.outcome, a.horizon_days, a.reference_window) for a in plan.values()}
+        with _steps(7 + len(fits) + len(plan)) as step:
+            result, monitoring, study = _demo_steps(paths, out_dir, step)
     out.print(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
-        f"{plural(len(cohort.frame), 'cohort recipient')} in "
+        f"{plural(result.run['counts']['kept'], 'cohort recipient')} in "
         f"{plural(len(result.programs), 'program')}"
     )
     _summary(result, out_dir, True, given="the demo scenario")
     _monitor_summary(monitoring, out_dir)
+    out.print(f"The study plan of {out_dir / 'spec.toml'}: every analysis, models in "
+              f"{out_dir / 'models'}", markup=False)
+    _plan_summary(study, out_dir / "study", False)
+
+
+def _demo_steps(paths: dict, out_dir: Path, step: Callable[[str], None]):
+    """The demo's work: the one-year graft-failure evaluation, monitoring, the study plan."""
+    from casemix import demo as scenario
+    from casemix.data.records import read_records
+    from casemix.evaluation.evaluate import evaluate as run_evaluation
+    from casemix.evaluation.study import evaluate_plan
+    from casemix.model.plan import fit_plan
+    from casemix.model.reference import fit_reference
+
+    step("fitting the reference model")
+    reference = read_records(paths["reference"], paths["spec"], cutoff=scenario.REFERENCE_CUTOFF)
+    model = fit_reference(reference, reference.spec, "graft_failure", 365,
+                          scenario.REFERENCE_CUTOFF, window=scenario.REFERENCE_WINDOW)
+    model.save(out_dir / "model.json")
+    step("evaluating programs")
+    cohort = read_records(paths["cohort"], paths["spec"], cutoff=scenario.COHORT_CUTOFF)
+    result = run_evaluation(cohort, out_dir / "model.json", paths["rules"],
+                            cutoff=scenario.COHORT_CUTOFF, window=scenario.COHORT_WINDOW)
+    step("writing files")
+    result.save(out_dir)
+    step("writing the report")
+    _write_report(out_dir)
+    step("monitoring programs")
+    monitoring = _monitor_files(cohort, out_dir / "model.json", scenario.COHORT_WINDOW[0],
+                                scenario.COHORT_CUTOFF, paths["rules"], out_dir)
+    models = fit_plan(reference, cutoff=scenario.REFERENCE_CUTOFF, progress=step)
+    models = models.save(out_dir / "models")
+    study = evaluate_plan(cohort, models, paths["rules"], cutoff=scenario.COHORT_CUTOFF,
+                          progress=step)
+    step("writing the study")
+    study.save(out_dir / "study")
+    step("done")
+    return result, monitoring, study
 
 
 def main() -> None:

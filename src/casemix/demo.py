@@ -10,7 +10,11 @@ population). A few records are broken on purpose (``DemoNetwork.planted``) so th
 validation story shows. One program's hazard rises part-way through the cohort period
 (:data:`RISE`), for the monitoring story: from the rise date on, its recipients carry an
 extra graft-loss hazard on top of the one drawn with everyone else's, drawn from a generator
-of its own, so that every other record is the same as without the rise.
+of its own, so that every other record is the same as without the rise. Another program's
+graft losses become more frequent late after the transplant (:data:`LATE`), for the study
+plan: from one year after each transplant its recipients carry an extra graft-loss hazard
+(drawn the same way, from a generator of its own), so it is like the others at 30 days and
+at one year and has excess failures at three years.
 
 Graft failure is the earliest of graft loss, re-transplant and death with a working graft.
 The failure time comes from the all-cause hazard and its cause is drawn afterwards (older
@@ -42,6 +46,7 @@ __all__ = [
     "COHORT_CUTOFF",
     "COHORT_WINDOW",
     "COLUMNS",
+    "LATE",
     "REFERENCE_CUTOFF",
     "REFERENCE_WINDOW",
     "RISE",
@@ -181,7 +186,12 @@ _PROGRAMS = (
         "LV07", 1000, 240, 0.85, _NEAR + "; years on dialysis often not recorded",
         dialysis_missing=_DIALYSIS_MISSING_HIGH,
     ),
-    _Program("LV08", 1700, 420, 1.05, _NEAR),
+    _Program(
+        "LV08", 1700, 420, 1.05,
+        "typical case mix; true hazard ratio 1.05 in the first year after the transplant, "
+        "then graft losses four times as frequent: fine at 30 days and at one year, excess "
+        "failures at three years",
+    ),
     _Program(
         "LV09", 260, 62, 1.40,
         "small program (about 60 cohort recipients): a raised true hazard ratio that the data "
@@ -216,6 +226,21 @@ class _Rise:
 #: The cohort program whose hazard doubles part-way through the cohort period.
 RISE = _Rise("LV02", dt.date(2023, 7, 1), 2.0, 2)
 
+
+@dataclass(frozen=True)
+class _Late:
+    """A program whose graft-failure hazard is multiplied by ``factor`` from ``after_days``
+    days after each transplant on."""
+
+    program: str
+    after_days: int
+    factor: float
+    stream: int  # second seed word of its own generator: [seed, stream]
+
+
+#: The cohort program whose graft losses become four times as frequent after the first year.
+LATE = _Late("LV08", 365, 4.0, 3)
+
 _ROLES = ("reference", "cohort")
 _EPOCH = dt.date(1970, 1, 1)
 
@@ -231,12 +256,14 @@ class DemoNetwork:
         Dates are ``datetime64`` (``NaT`` when none), ``diabetes`` is nullable ``Int64``.
     cohort : pandas.DataFrame, shape (about 5 000, 18)
         The evaluation-cohort extract, same columns; recipient ids continue the reference's.
-    truth : pandas.DataFrame, shape (16, 8)
+    truth : pandas.DataFrame, shape (16, 10)
         Per program: ``program``, ``true_hr`` (cohort hazard ratio against the network),
         ``recipients_reference``, ``recipients_cohort`` (rows in each file), ``story``,
         ``reference_hr`` (the milder hazard ratio used in the reference population),
         ``rise_from`` (the day the program's hazard rises, ``None`` for most) and
-        ``rise_factor`` (how much it rises by; 1 for most).
+        ``rise_factor`` (how much it rises by; 1 for most), ``late_from_day`` (the day after
+        each transplant from which the :data:`LATE` program's hazard is raised, ``None`` for
+        the others) and ``late_factor`` (by how much; 1 for most).
     planted : pandas.DataFrame
         The records broken on purpose: ``role`` (``reference`` / ``cohort``),
         ``recipient_id``, ``problem`` and ``handling`` (``excluded`` or ``kept, warned``).
@@ -290,7 +317,12 @@ def generate(seed: int = 2026) -> DemoNetwork:
         first_id += len(frame)
         frames[role], marks = _plant_problems(rng, frame, role)
         planted.append(marks)
-    frames["cohort"] = _raise_hazard(frames["cohort"], eta, planted[-1], seed)
+    cohort = _raise_hazard(frames["cohort"], eta, planted[-1], seed, RISE.program,
+                           RISE.factor, RISE.stream, lambda tx: np.maximum(_day(RISE.start) - tx,
+                                                                           0.0))
+    frames["cohort"] = _raise_hazard(cohort, eta, planted[-1], seed, LATE.program, LATE.factor,
+                                     LATE.stream, lambda tx: np.full(tx.shape,
+                                                                     float(LATE.after_days)))
     return DemoNetwork(
         reference=frames["reference"],
         cohort=frames["cohort"],
@@ -580,28 +612,30 @@ def _assemble(
 
 
 def _raise_hazard(
-    frame: pd.DataFrame, eta: np.ndarray, planted: pd.DataFrame, seed: int
+    frame: pd.DataFrame, eta: np.ndarray, planted: pd.DataFrame, seed: int, program: str,
+    factor: float, stream: int, begins: Callable[[np.ndarray], np.ndarray],
 ) -> pd.DataFrame:
-    """Give the :data:`RISE` program's recipients an extra graft loss from the rise date on.
+    """Give a program's recipients an extra graft loss from a day on (:data:`RISE`, :data:`LATE`).
 
-    The extra hazard, (factor - 1) times each recipient's own, on calendar days from the rise
-    on, competes with the failure already drawn: the earlier of the two is the failure, so
-    the hazard after the rise is ``factor`` times the one before. The draws come from a
-    generator of their own (seeded ``[seed, RISE.stream]``), one per row of the program, and
+    ``begins(tx)`` gives, per recipient (transplant day ``tx``), the day after the transplant
+    the extra hazard starts. The extra hazard, (factor - 1) times the recipient's own, from
+    that day on, competes with the failure already drawn: the earlier of the two is the
+    failure, so the hazard from then on is ``factor`` times the one before. The draws come
+    from a generator of their own (seeded ``[seed, stream]``), one per row of the program, and
     only the graft-loss dates of the program's recipients (planted records left alone) can
     change.
     """
-    if RISE.factor == 1.0:
+    if factor == 1.0:
         return frame
-    rng = np.random.default_rng([int(seed), RISE.stream])
-    mine = (frame["program"] == RISE.program).to_numpy() & ~frame["recipient_id"].isin(
+    rng = np.random.default_rng([int(seed), stream])
+    mine = (frame["program"] == program).to_numpy() & ~frame["recipient_id"].isin(
         planted["recipient_id"]
     ).to_numpy()
     draw = rng.exponential(size=int(mine.sum()))
     tx = _days_since_epoch(frame.loc[mine, "transplant_date"])
-    start = np.maximum(_day(RISE.start) - tx, 0.0)  # days after the transplant the rise begins
+    start = begins(tx)
     # (u / scale)^shape - (start / scale)^shape = draw / ((factor - 1) exp(eta)), solved for u
-    scaled = draw * np.exp(-eta[mine]) / (RISE.factor - 1.0) + (
+    scaled = draw * np.exp(-eta[mine]) / (factor - 1.0) + (
         start / WEIBULL_SCALE_DAYS
     ) ** WEIBULL_SHAPE
     extra = tx + np.floor(WEIBULL_SCALE_DAYS * scaled ** (1.0 / WEIBULL_SHAPE))
@@ -744,5 +778,8 @@ def _truth_table(frames: dict[str, pd.DataFrame]) -> pd.DataFrame:
             "rise_from": [RISE.start.isoformat() if p.code == RISE.program else None
                           for p in _PROGRAMS],
             "rise_factor": [RISE.factor if p.code == RISE.program else 1.0 for p in _PROGRAMS],
+            "late_from_day": [LATE.after_days if p.code == LATE.program else None
+                              for p in _PROGRAMS],
+            "late_factor": [LATE.factor if p.code == LATE.program else 1.0 for p in _PROGRAMS],
         }
     )

@@ -271,3 +271,90 @@ def test_outcome_definitions_say_how_death_is_handled():
         "follow-up and competes with the event)"
     )
     assert spec.outcome("death").definition(death) == "death = the earliest of death_date"
+
+
+# --- the study plan ---------------------------------------------------------------------
+
+PLAN = {
+    "graft_1y": {"outcome": "death", "horizon_days": 365, "cohort_from": dt.date(2022, 1, 1),
+                 "cohort_to": dt.date(2023, 12, 31), "reference_from": dt.date(2016, 1, 1),
+                 "reference_to": dt.date(2021, 12, 31)},
+    "death_30d": {"outcome": "death", "horizon_days": 30},
+}
+
+
+def _plan(**tables) -> dict:
+    return _with(analyses=copy.deepcopy(tables or PLAN))
+
+
+def test_plan_is_read_in_file_order_and_round_trips_through_sorted_json():
+    spec = spec_from_dict(_plan())
+    assert list(spec.analyses) == ["graft_1y", "death_30d"]
+    one = spec.analyses["graft_1y"]
+    assert (one.outcome, one.horizon_days) == ("death", 365)
+    assert one.reference_window == (dt.date(2016, 1, 1), dt.date(2021, 12, 31))
+    assert spec.analyses["death_30d"].reference_window == (None, None)
+    back = spec_from_dict(json.loads(json.dumps(spec.to_dict(), sort_keys=True)))
+    assert back == spec and list(back.analyses) == list(spec.analyses)
+
+
+def test_a_spec_without_a_plan_has_none_and_writes_none():
+    spec = spec_from_dict(MINIMAL)
+    assert dict(spec.analyses) == {}
+    assert "analyses" not in spec.to_dict()
+
+
+def test_default_cohort_window_ends_one_horizon_before_the_cutoff_and_spans_two_years():
+    spec = spec_from_dict(_plan())
+    cutoff = dt.date(2025, 6, 30)
+    start, end = spec.analyses["death_30d"].cohort_window(cutoff)
+    assert end == dt.date(2025, 5, 31)  # 30 days before the cut-off
+    assert (end - start).days + 1 == 730  # inclusive: 730 transplant days
+    assert spec.analyses["graft_1y"].cohort_window(cutoff) == (dt.date(2022, 1, 1),
+                                                                dt.date(2023, 12, 31))
+
+
+@pytest.mark.parametrize(("table", "pattern"), [
+    ({"outcome": "deth", "horizon_days": 30}, r"analyses\.a\.outcome.*'deth'.*closest: 'death'"),
+    ({"outcome": "death", "horizon_days": 30, "cohort_form": "2024-01-01"},
+     r"unknown key 'analyses\.a\.cohort_form' \(closest: 'cohort_from'"),
+    ({"outcome": "death"}, r"\[analyses\.a\] lacks 'horizon_days'"),
+    ({"outcome": "death", "horizon_days": 0}, r"analyses\.a\.horizon_days.*positive"),
+    ({"outcome": "death", "horizon_days": 30, "cohort_from": dt.date(2024, 2, 1),
+      "cohort_to": dt.date(2024, 1, 1)}, r"analyses\.a\.cohort_from' \(2024-02-01\) is after"),
+    ({"outcome": "death", "horizon_days": 30, "reference_from": dt.date(2021, 2, 1),
+      "reference_to": dt.date(2021, 1, 1)}, r"analyses\.a\.reference_from' .* is after"),
+])
+def test_plan_errors_name_the_analysis_and_key(table, pattern):
+    with pytest.raises(SpecError, match=pattern):
+        spec_from_dict(_plan(a=table))
+
+
+def test_duplicate_and_unusable_analysis_names_are_refused():
+    twice = _with(analyses=[{"name": "x", "outcome": "death", "horizon_days": 30},
+                            {"name": "x", "outcome": "death", "horizon_days": 365}])
+    with pytest.raises(SpecError, match="analysis 'x' is declared twice"):
+        spec_from_dict(twice)
+    with pytest.raises(SpecError, match="'a b' may hold only letters"):
+        spec_from_dict(_plan(**{"a b": {"outcome": "death", "horizon_days": 30}}))
+
+
+def test_windows_are_checked_against_the_cutoff_of_the_analysis_table():
+    late = _plan(a={"outcome": "death", "horizon_days": 30, "cohort_to": dt.date(2026, 1, 1)})
+    late["analysis"] = {"cutoff": dt.date(2025, 6, 30)}
+    with pytest.raises(SpecError, match=r"analysis 'a': 'analyses\.a\.cohort_to' \(2026-01-01\)"
+                                        r" is after the cut-off 2025-06-30"):
+        spec_from_dict(late)
+    long = _plan(a={"outcome": "death", "horizon_days": 1095,
+                    "reference_from": dt.date(2024, 1, 1), "reference_to": dt.date(2024, 6, 30)})
+    long["analysis"] = {"cutoff": dt.date(2025, 6, 30)}
+    with pytest.raises(SpecError, match="analysis 'a': a horizon of 1095 days cannot be "
+                                        "supported"):
+        spec_from_dict(long)
+
+
+def test_default_window_that_cannot_exist_is_an_error_naming_the_analysis():
+    spec = spec_from_dict(_plan(a={"outcome": "death", "horizon_days": 365,
+                                   "cohort_from": dt.date(2025, 1, 1)}))
+    with pytest.raises(SpecError, match=r"analysis 'a': the cohort window starts 2025-01-01"):
+        spec.analyses["a"].cohort_window(dt.date(2025, 6, 30))

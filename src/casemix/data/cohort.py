@@ -48,7 +48,10 @@ import pandas as pd
 from casemix.data.records import Records, to_timestamp
 from casemix.errors import InputError
 
-__all__ = ["DAY_ZERO_TIME", "Cohort", "apply_window", "build_cohort", "follow_up"]
+#: Exclusion kind of a transplant outside the cohort window.
+WINDOW_KIND = "transplanted outside the cohort window"
+
+__all__ = ["DAY_ZERO_TIME", "WINDOW_KIND", "Cohort", "apply_window", "build_cohort", "follow_up"]
 
 _DAY = pd.Timedelta(days=1)
 # analysis time (days) of a follow-up that ends on the day of the transplant
@@ -339,10 +342,10 @@ def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timest
                                          "transplanted after the cut-off")]
     if end is not None:
         checks.append((tx > end, f", after the cohort window (to {end:%Y-%m-%d})",
-                       "transplanted outside the cohort window"))
+                       WINDOW_KIND))
     if start is not None:
         checks.append((tx < start, f", before the cohort window (from {start:%Y-%m-%d})",
-                       "transplanted outside the cohort window"))
+                       WINDOW_KIND))
     for mask, text, kind in checks:
         mask = mask & reasons["reason"].isna()
         day = tx[mask].dt.strftime("%Y-%m-%d")  # only the few excluded: strftime is slow

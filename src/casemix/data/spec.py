@@ -1,4 +1,5 @@
-"""The study spec: which columns hold what, the outcomes, the covariates and the analysis window.
+"""The study spec: which columns hold what, the outcomes, the covariates, the analysis window
+and the study plan (the analyses of a periodic evaluation).
 
 A spec is written in TOML (format documented in ``docs/spec.md``) and read into a frozen
 :class:`Spec`. :meth:`Spec.to_dict` gives a plain JSON-able dict that
@@ -27,6 +28,7 @@ else:  # pragma: no cover - Python 3.10 only
     import tomli as tomllib
 
 __all__ = [
+    "DEFAULT_COHORT_DAYS",
     "DEFAULT_MISSING_TOKENS",
     "KINDS",
     "MISSING_POLICIES",
@@ -35,6 +37,7 @@ __all__ = [
     "Columns",
     "Covariate",
     "Outcome",
+    "PlanAnalysis",
     "Spec",
     "closest",
     "load_spec",
@@ -57,10 +60,18 @@ SPLINE_KNOT_QUANTILES: Mapping[int, tuple[float, ...]] = MappingProxyType(
     }
 )
 
-_TOP_KEYS = ("columns", "outcomes", "covariates", "strata", "analysis", "records")
+_TOP_KEYS = ("columns", "outcomes", "covariates", "strata", "analysis", "analyses", "records")
 _COLUMN_KEYS = ("recipient", "program", "transplant_date", "last_seen")
 _COVARIATE_KEYS = ("kind", "missing", "reference", "knots", "lower", "upper", "column", "other")
 _ANALYSIS_KEYS = ("cutoff", "horizon_days", "cohort_from", "cohort_to")
+_PLAN_KEYS = ("outcome", "horizon_days", "cohort_from", "cohort_to", "reference_from",
+              "reference_to")
+_PLAN_DATES = _PLAN_KEYS[2:]
+#: Characters an analysis name may hold: it names a folder of the study's output.
+_NAME_CHARS = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789_-")
+#: Length in days of a plan analysis' default cohort window (two years: our choice, see
+#: docs/spec.md "The study plan").
+DEFAULT_COHORT_DAYS = 730
 _RECORDS_KEYS = ("date_format", "delimiter", "decimal", "missing", "normalise_programs")
 
 #: Cell texts read as an empty cell (after stripping spaces), unless ``[records] missing``
@@ -221,6 +232,94 @@ class Analysis:
 
 
 @dataclass(frozen=True)
+class PlanAnalysis:
+    """One analysis of the study plan (``[analyses.NAME]``; see docs/spec.md).
+
+    Attributes
+    ----------
+    name : str
+        The user's name of the analysis (letters, digits, ``_`` and ``-``: it names a folder).
+    outcome : str
+        An outcome of the spec.
+    horizon_days : int
+        Follow-up that counts, in days.
+    cohort_from, cohort_to : datetime.date or None
+        Inclusive transplant-date window of the evaluation cohort; ``None`` takes the
+        default of :meth:`cohort_window`.
+    reference_from, reference_to : datetime.date or None
+        Inclusive transplant-date window of the reference population; ``None`` is open.
+    """
+
+    name: str
+    outcome: str
+    horizon_days: int
+    cohort_from: dt.date | None = None
+    cohort_to: dt.date | None = None
+    reference_from: dt.date | None = None
+    reference_to: dt.date | None = None
+
+    @property
+    def reference_window(self) -> tuple[dt.date | None, dt.date | None]:
+        """The reference population's transplant-date window ``(from, to)`` (open ends None)."""
+        return (self.reference_from, self.reference_to)
+
+    def cohort_window(self, cutoff: dt.date) -> tuple[dt.date, dt.date]:
+        """The cohort window at the evaluation cut-off, defaults filled in.
+
+        ``cohort_to`` defaults to ``horizon_days`` days before the cut-off (every cohort
+        recipient could have been followed for the whole horizon), ``cohort_from`` to
+        :data:`DEFAULT_COHORT_DAYS` days before the window's end (inclusive: a window of
+        that many days).
+
+        Raises
+        ------
+        SpecError
+            The window ends after the cut-off or starts after it ends (naming the analysis).
+        """
+        key = f"analyses.{self.name}"
+        end = self.cohort_to or cutoff - dt.timedelta(days=self.horizon_days)
+        start = self.cohort_from or end - dt.timedelta(days=DEFAULT_COHORT_DAYS - 1)
+        if end > cutoff:
+            raise SpecError(
+                f"analysis '{self.name}': '{key}.cohort_to' ({end}) is after the cut-off "
+                f"{cutoff}: transplants after the cut-off cannot be evaluated; end the window "
+                "on or before the cut-off."
+            )
+        if start > end:
+            given = "given" if self.cohort_to else f"{self.horizon_days} days before the cut-off"
+            raise SpecError(
+                f"analysis '{self.name}': the cohort window starts {start} ('{key}.cohort_from')"
+                f" after it ends {end} ({given}); move cohort_from earlier or set cohort_to."
+            )
+        return (start, end)
+
+    def check_reference(self, cutoff: dt.date) -> None:
+        """Refuse a reference window that cannot support the horizon at this cut-off.
+
+        Raises
+        ------
+        SpecError
+            The reference window ends after the cut-off, or no reference recipient could be
+            followed to the horizon (its first transplant day plus the horizon is after the
+            cut-off); the message names the analysis.
+        """
+        key = f"analyses.{self.name}"
+        start, end = self.reference_window
+        if end is not None and end > cutoff:
+            raise SpecError(
+                f"analysis '{self.name}': '{key}.reference_to' ({end}) is after the reference "
+                f"cut-off {cutoff}; end the reference window on or before the cut-off."
+            )
+        if start is not None and start + dt.timedelta(days=self.horizon_days) > cutoff:
+            raise SpecError(
+                f"analysis '{self.name}': a horizon of {self.horizon_days} days cannot be "
+                f"supported by a reference population transplanted from {start} with data "
+                f"complete to {cutoff}: no reference recipient can have been followed that "
+                "long. Choose an earlier reference_from, a shorter horizon or a later cut-off."
+            )
+
+
+@dataclass(frozen=True)
 class Spec:
     """A study spec (see ``docs/spec.md``).
 
@@ -234,6 +333,8 @@ class Spec:
     strata : str or None
         Column whose levels get separate baseline hazards.
     analysis : Analysis
+    analyses : Mapping[str, PlanAnalysis]
+        The study plan, in the order of the file (read-only; empty without ``[analyses]``).
     date_format : str or None
         ``strftime`` format of the date columns; ``None`` means ISO 8601.
     delimiter : str
@@ -259,6 +360,7 @@ class Spec:
     decimal: str = "."
     missing_tokens: tuple[str, ...] = DEFAULT_MISSING_TOKENS
     normalise_programs: bool = False
+    analyses: Mapping[str, PlanAnalysis] = field(default_factory=lambda: MappingProxyType({}))
 
     @property
     def where(self) -> str:
@@ -331,6 +433,9 @@ class Spec:
         }
         if analysis:
             out["analysis"] = analysis
+        if self.analyses:
+            # A list, like the covariates, so that the plan's order survives sorted JSON.
+            out["analyses"] = [_plan_dict(a) for a in self.analyses.values()]
         records = {
             "date_format": self.date_format,
             "delimiter": None if self.delimiter == "," else self.delimiter,
@@ -350,6 +455,17 @@ def _outcome_dict(outcome: Outcome) -> dict[str, Any]:
     out: dict[str, Any] = {"dates": list(outcome.dates)}
     if outcome.censor_at:
         out["censor_at"] = list(outcome.censor_at)
+    return out
+
+
+def _plan_dict(plan: PlanAnalysis) -> dict[str, Any]:
+    """The keys of one analysis of the plan, with a ``name`` key (unset windows left out)."""
+    out: dict[str, Any] = {"name": plan.name, "outcome": plan.outcome,
+                           "horizon_days": plan.horizon_days}
+    for key in _PLAN_DATES:
+        value = getattr(plan, key)
+        if value is not None:
+            out[key] = value.isoformat()
     return out
 
 
@@ -403,7 +519,7 @@ def spec_from_dict(d: Mapping[str, Any], *, path: str | Path | None = None) -> S
     ----------
     d : mapping
         Tables ``columns``, ``outcomes``, ``covariates`` and optional ``strata``,
-        ``analysis``, ``records``. Dates may be ``datetime.date`` or ISO strings.
+        ``analysis``, ``analyses``, ``records``. Dates may be ``datetime.date`` or ISO strings.
     path : str or pathlib.Path, optional
         Where the dict was read from, for messages.
 
@@ -417,12 +533,15 @@ def spec_from_dict(d: Mapping[str, Any], *, path: str | Path | None = None) -> S
     for required in ("columns", "outcomes"):
         if required not in d:
             raise SpecError(f"{where} has no [{required}] table; add it (see docs/spec.md).")
+    outcomes = _outcomes(_table(d["outcomes"], "outcomes", where), where)
+    analysis = _analysis(_table(d.get("analysis", {}), "analysis", where), where)
     spec = Spec(
         columns=_columns(_table(d["columns"], "columns", where), where),
-        outcomes=_outcomes(_table(d["outcomes"], "outcomes", where), where),
+        outcomes=outcomes,
         covariates=_covariates(d.get("covariates", {}), where),
         strata=_strata(d.get("strata"), where),
-        analysis=_analysis(_table(d.get("analysis", {}), "analysis", where), where),
+        analysis=analysis,
+        analyses=_plan(d.get("analyses", {}), outcomes, analysis.cutoff, where),
         path=None if path is None else Path(path),
         **_records_format(_table(d.get("records", {}), "records", where), where),
     )
@@ -631,6 +750,64 @@ def _analysis(table: Mapping[str, Any], where: str) -> Analysis:
             f"{where}: 'analysis.cohort_from' ({start}) is after 'analysis.cohort_to' ({end})."
         )
     return analysis
+
+
+def _plan(value: Any, outcomes: Mapping[str, Outcome], cutoff: dt.date | None,
+          where: str) -> Mapping[str, PlanAnalysis]:
+    """The study plan from ``[analyses.NAME]`` tables or a list of tables with a ``name``."""
+    if isinstance(value, Mapping):
+        items = [(name, body) for name, body in value.items()]
+    elif isinstance(value, (list, tuple)):
+        items = []
+        for i, body in enumerate(value):
+            body = dict(_table(body, f"analyses[{i}]", where))
+            items.append((_text(body.pop("name", None), f"analyses[{i}].name", where), body))
+    else:
+        raise SpecError(f"{where}: 'analyses' must be a table ([analyses.NAME]), not {value!r}.")
+    out: dict[str, PlanAnalysis] = {}
+    for name, body in items:
+        if name in out:
+            raise SpecError(f"{where}: analysis '{name}' is declared twice; keep one.")
+        out[name] = _plan_analysis(name, body, outcomes, cutoff, where)
+    return MappingProxyType(out)
+
+
+def _plan_analysis(name: str, body: Any, outcomes: Mapping[str, Outcome],
+                   cutoff: dt.date | None, where: str) -> PlanAnalysis:
+    key = f"analyses.{name}"
+    if not name or not set(name) <= _NAME_CHARS:
+        raise SpecError(
+            f"{where}: analysis name '{name}' may hold only letters, digits, '_' and '-' "
+            "(it names the analysis' folder), for example [analyses.graft_1y]."
+        )
+    body = _table(body, key, where)
+    _check_keys(body, _PLAN_KEYS, key, where)
+    for required in ("outcome", "horizon_days"):
+        if required not in body:
+            raise SpecError(f"{where}: [{key}] lacks '{required}'; every analysis needs an "
+                            "outcome and horizon_days.")
+    outcome = _text(body["outcome"], f"{key}.outcome", where)
+    if outcome not in outcomes:
+        raise SpecError(
+            f"{where}: '{key}.outcome' = {outcome!r} is not an outcome of the spec"
+            f"{closest(outcome, outcomes)}; declared outcomes: {', '.join(outcomes)}."
+        )
+    horizon = body["horizon_days"]
+    if isinstance(horizon, bool) or not isinstance(horizon, int) or horizon <= 0:
+        raise SpecError(f"{where}: '{key}.horizon_days' must be a positive whole number of "
+                        f"days, not {horizon!r}.")
+    dates = {k: _date(body.get(k), f"{key}.{k}", where) for k in _PLAN_DATES}
+    for side in ("cohort", "reference"):
+        start, end = dates[f"{side}_from"], dates[f"{side}_to"]
+        if start is not None and end is not None and start > end:
+            raise SpecError(
+                f"{where}: '{key}.{side}_from' ({start}) is after '{key}.{side}_to' ({end})."
+            )
+    plan = PlanAnalysis(name=name, outcome=outcome, horizon_days=horizon, **dates)
+    if cutoff is not None:
+        plan.cohort_window(cutoff)
+        plan.check_reference(cutoff)
+    return plan
 
 
 def _records_format(table: Mapping[str, Any], where: str) -> dict[str, Any]:
