@@ -82,7 +82,9 @@ def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.Dat
     """Read a CSV file, keeping ``text_columns`` exactly as written.
 
     A program coded ``NA`` or an empty code stays that text; the other columns are read as
-    ``read_csv`` reads them by default. ``converters={column: str}`` is not enough: from
+    ``read_csv`` reads them by default, except that floats are parsed round-trip (pandas'
+    default parser can be one unit in the last place off, and a loaded evaluation would then
+    render different bytes). ``converters={column: str}`` is not enough: from
     pandas 3 on the missing-value check also runs on converted values, so ``NA`` and ``""``
     would become NaN there and a program would vanish from the report.
 
@@ -96,6 +98,7 @@ def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.Dat
     header = pd.read_csv(path, nrows=0).columns
     text = [c for c in header if c in text_columns]
     return pd.read_csv(path, dtype=dict.fromkeys(text, str), keep_default_na=False,
+                       float_precision="round_trip",
                        na_values={c: list(_DEFAULT_NA) for c in header if c not in text})
 
 
