@@ -60,10 +60,11 @@ def _brute(time, event, risk):
 
 
 @pytest.mark.parametrize("seed", range(6))
-def test_random_ties_against_pairs_and_lifelines(seed):
+@pytest.mark.parametrize("unit", [1.0, 0.37, 1000.0])  # whole days, fractions, a wide span
+def test_random_ties_against_pairs_and_lifelines(seed, unit):
     rng = np.random.default_rng(seed)
     n = int(rng.integers(2, 300))
-    time = rng.integers(0, 12, n).astype(float)
+    time = rng.integers(0, 12, n) * unit
     event = rng.integers(0, 2, n)
     event[0] = 1
     risk = rng.integers(0, 6, n).astype(float)
