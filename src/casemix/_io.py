@@ -78,13 +78,18 @@ def write_csv(path: str | Path, frame: pd.DataFrame, *, exact: bool = False) -> 
     )
 
 
+# pandas < 3 parses floats round-trip only when asked; pandas 3 does by default.
+_ROUND_TRIP = {"float_precision": "round_trip"} if int(pd.__version__.split(".")[0]) < 3 else {}
+
+
 def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.DataFrame:
     """Read a CSV file, keeping ``text_columns`` exactly as written.
 
     A program coded ``NA`` or an empty code stays that text; the other columns are read as
     ``read_csv`` reads them by default, except that floats are parsed round-trip (pandas'
     default parser can be one unit in the last place off, and a loaded evaluation would then
-    render different bytes). ``converters={column: str}`` is not enough: from
+    render different bytes; pandas 3 parses round-trip by default and deprecates the option).
+    ``converters={column: str}`` is not enough: from
     pandas 3 on the missing-value check also runs on converted values, so ``NA`` and ``""``
     would become NaN there and a program would vanish from the report.
 
@@ -98,7 +103,7 @@ def read_csv_as_written(path: str | Path, text_columns: Sequence[str]) -> pd.Dat
     header = pd.read_csv(path, nrows=0).columns
     text = [c for c in header if c in text_columns]
     return pd.read_csv(path, dtype=dict.fromkeys(text, str), keep_default_na=False,
-                       float_precision="round_trip",
+                       **_ROUND_TRIP,
                        na_values={c: list(_DEFAULT_NA) for c in header if c not in text})
 
 
