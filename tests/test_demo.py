@@ -418,17 +418,7 @@ def test_rising_program_doubles_its_hazard_from_the_rise_date(network):
     covariates = covariates.dropna()
     rise = (pd.Timestamp(demo.RISE.start) - frame["transplant_date"]).dt.days
     rise = rise.loc[covariates.index]
-    before = covariates.assign(entry=0.0, stop=np.minimum(covariates["time"],
-                                                          rise.clip(lower=0)), after=0.0)
-    before["event"] = before["event"] * (covariates["time"] <= before["stop"])
-    after = covariates[covariates["time"] > rise.clip(lower=0)].assign(
-        entry=rise.clip(lower=0), stop=covariates["time"], after=1.0)
-    pieces = pd.concat([before[before["stop"] > before["entry"]], after])
-    pieces = pieces[pieces["stop"] > pieces["entry"]]
-    pieces["rising_after"] = pieces["after"] * (pieces["program"] == RISING)
-    dummies = pd.get_dummies(pieces["program"], dtype=float).drop(columns="LV01")
-    data = pieces.drop(columns=["program", "time", "after"]).join(dummies)
-    fit = lifelines().CoxPHFitter().fit(data, "stop", "event", entry_col="entry")
+    fit = _split_fit(covariates, rise.clip(lower=0), RISING, "rising_after")
     # truth: the program's hazard ratio is true_hr before the rise and twice that after it
     true_hr = network.truth.set_index("program").loc[RISING, "true_hr"]
     z_before = (fit.params_[RISING] - np.log(true_hr)) / fit.standard_errors_[RISING]
@@ -445,18 +435,9 @@ def test_late_program_quadruples_its_hazard_after_the_first_year(network):
     outcome = _graft_failure(frame, _cutoff(network, "cohort"))
     covariates = _simple_encoding(frame).assign(program=frame["program"]).join(outcome)
     covariates = covariates.dropna()
-    day = float(demo.LATE.after_days)
-    before = covariates.assign(entry=0.0, stop=np.minimum(covariates["time"], day), after=0.0)
-    before["event"] = before["event"] * (covariates["time"] <= day)
-    after = covariates[covariates["time"] > day].assign(entry=day, stop=covariates["time"],
-                                                        after=1.0)
-    pieces = pd.concat([before[before["stop"] > 0], after])
-    pieces["late_after"] = pieces["after"] * (pieces["program"] == LATE)
     # (the rising program's change in calendar time is not modelled: only the late
     # program's terms are checked)
-    dummies = pd.get_dummies(pieces["program"], dtype=float).drop(columns="LV01")
-    data = pieces.drop(columns=["program", "time", "after"]).join(dummies)
-    fit = lifelines().CoxPHFitter().fit(data, "stop", "event", entry_col="entry")
+    fit = _split_fit(covariates, float(demo.LATE.after_days), LATE, "late_after")
     # truth: the program's hazard ratio is true_hr in the first year, four times that later
     true_hr = network.truth.set_index("program").loc[LATE, "true_hr"]
     z_first = (fit.params_[LATE] - np.log(true_hr)) / fit.standard_errors_[LATE]
@@ -518,3 +499,22 @@ def test_patient_death_dates_include_deaths_after_graft_loss(network):
     with_graft = frame["death_date"].notna() & frame["graft_loss_date"].isna() & frame[
         "retransplant_date"].isna()
     assert after_loss.sum() > 50 and with_graft.sum() > 300
+
+
+def _split_fit(covariates: pd.DataFrame, change, program: str, term: str):
+    """Lifelines Cox fit with each follow-up split at ``change`` (days after transplant, one
+    value or one per recipient), delayed entry for the second piece, and a 0/1 ``term`` for
+    ``program`` after the change."""
+    before = covariates.assign(entry=0.0, stop=np.minimum(covariates["time"], change),
+                               after=0.0)
+    before["event"] = before["event"] * (covariates["time"] <= before["stop"])
+    later = covariates["time"] > change
+    after = covariates[later].assign(
+        entry=change[later] if isinstance(change, pd.Series) else change,
+        stop=covariates["time"], after=1.0)
+    pieces = pd.concat([before, after])
+    pieces = pieces[pieces["stop"] > pieces["entry"]]
+    pieces[term] = pieces["after"] * (pieces["program"] == program)
+    dummies = pd.get_dummies(pieces["program"], dtype=float).drop(columns="LV01")
+    data = pieces.drop(columns=["program", "time", "after"]).join(dummies)
+    return lifelines().CoxPHFitter().fit(data, "stop", "event", entry_col="entry")

@@ -236,14 +236,19 @@ def test_plan_commands_run_on_the_demo_files(demo_folder):
 
 def test_plan_python_section_runs(demo_folder, tmp_path):
     (block,) = python_blocks(section(PLAN))
+    _run_beside_the_demo_inputs(block, demo_folder, tmp_path)
+    for product in ("models/index.json", "study/overview.csv", "study/death_3y/run.json"):
+        assert (tmp_path / product).is_file(), product
+
+
+def _run_beside_the_demo_inputs(block: str, demo_folder, tmp_path) -> None:
+    """Run a README Python block in ``tmp_path`` holding a copy of the demo's inputs."""
     folder, done = demo_folder
     assert done.returncode == 0, done.stderr
     for name in ("reference.csv", "cohort.csv", "spec.toml", "rules.toml"):
         (tmp_path / name).write_bytes((folder / name).read_bytes())
     ran = run([sys.executable, "-c", block], tmp_path)
     assert ran.returncode == 0, ran.stderr
-    for product in ("models/index.json", "study/overview.csv", "study/death_3y/run.json"):
-        assert (tmp_path / product).is_file(), product
 
 
 def python_blocks(text: str) -> list[str]:
@@ -253,12 +258,7 @@ def python_blocks(text: str) -> list[str]:
 def test_python_section_evaluates_audits_and_reports(demo_folder, tmp_path):
     (block,) = python_blocks(section("Using it on your own extract"))
     assert "write_report(" in block and "run_audit(" in block
-    folder, done = demo_folder
-    assert done.returncode == 0, done.stderr
-    for name in ("reference.csv", "cohort.csv", "spec.toml", "rules.toml"):
-        (tmp_path / name).write_bytes((folder / name).read_bytes())
-    ran = run([sys.executable, "-c", block], tmp_path)
-    assert ran.returncode == 0, ran.stderr
+    _run_beside_the_demo_inputs(block, demo_folder, tmp_path)
     for product in ("results/programs.csv", "results/corrections.csv", "audit/findings.json"):
         assert (tmp_path / product).is_file(), product
     assert 'id="audit"' in (tmp_path / "results" / "report.html").read_text(encoding="utf-8")
