@@ -19,7 +19,7 @@ import pytest
 from casemix import demo, evaluate, fit_reference, read_records
 from casemix.data.spec import spec_from_dict
 from casemix.errors import CasemixWarning, DataWarning, InputError, SpecError
-from casemix.evaluation.evaluate import PROGRAM_COLUMNS
+from casemix.evaluation.evaluate import PROGRAM_COLUMNS, Evaluation
 from casemix.evaluation.study import Study, evaluate_plan
 from casemix.model.plan import fit_plan
 
@@ -186,3 +186,33 @@ def test_an_empty_cohort_names_the_analysis(reference, cohort):
         "cohort_to": dt.date(2021, 6, 30), "reference_to": dt.date(2020, 12, 31)}})
     with pytest.raises(InputError, match="analysis 'none': no recipient"):
         evaluate_plan(cohort, models)
+
+
+def test_load_gives_back_the_saved_study(study, saved):
+    loaded = Study.load(saved)
+    assert list(loaded) == ANALYSES
+    assert loaded.run == json.loads((saved / "study.json").read_text(encoding="utf-8"))
+    for name in ANALYSES:  # Evaluation.load reads counts back as floats
+        one = Evaluation.load(saved / name)
+        pd.testing.assert_frame_equal(loaded[name].programs, one.programs, check_exact=True)
+        pd.testing.assert_frame_equal(loaded[name].programs, study[name].programs,
+                                      check_exact=True, check_dtype=False)
+        assert loaded[name].run == study[name].run
+    pd.testing.assert_frame_equal(loaded.overview, study.overview, check_exact=True,
+                                  check_dtype=False)
+    pd.testing.assert_frame_equal(loaded.membership, study.membership, check_dtype=False)
+
+
+def test_load_names_the_folder_and_the_file_it_cannot_read(saved, tmp_path):
+    with pytest.raises(InputError, match=r"no study\.json, so this is not a study folder"):
+        Study.load(saved / "graft_1y")
+    broken = tmp_path / "broken"
+    broken.mkdir()
+    (broken / "study.json").write_text("{", encoding="utf-8")
+    with pytest.raises(InputError, match=r"broken/study.json: not valid JSON"):
+        Study.load(broken)
+    (broken / "study.json").write_text(json.dumps({"analyses": [{"folder": "graft_1y"}]}),
+                                       encoding="utf-8")
+    with pytest.raises(InputError, match=r"analysis 'graft_1y' of .*broken/study.json: .*"
+                                         r"broken/graft_1y: not a folder"):
+        Study.load(broken)

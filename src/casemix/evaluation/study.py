@@ -23,7 +23,7 @@ from typing import Any
 import pandas as pd
 
 import casemix
-from casemix._io import replace_folder, sha256_file, write_csv, write_json
+from casemix._io import read_csv_as_written, replace_folder, sha256_file, write_csv, write_json
 from casemix.data.check import reason_warnings
 from casemix.data.cohort import WINDOW_KIND
 from casemix.data.records import Records, read_records
@@ -35,11 +35,14 @@ from casemix.model.reference import ReferenceModel
 from casemix.stats.shrinkage import Prior
 from casemix.stats.verdict import Rules
 
-__all__ = ["STUDY_FILE", "STUDY_TABLES", "Study", "evaluate_plan"]
+__all__ = ["REPORT_FOLDER", "STUDY_FILE", "STUDY_TABLES", "Study", "evaluate_plan"]
 
 STUDY_FILE = "study.json"
 #: Tables of the study folder beside the analyses' sub-folders.
 STUDY_TABLES = ("overview.csv", "recipients.csv")
+#: The study report's folder inside a study folder (casemix.report.study): a new save
+#: removes it, so that no report of earlier results stays beside new ones.
+REPORT_FOLDER = "report"
 
 
 @dataclass(frozen=True, eq=False)
@@ -95,10 +98,12 @@ class Study:
         One sub-folder per analysis in the evaluation folder format (``Evaluation.save``),
         plus ``overview.csv``, ``recipients.csv`` (:attr:`membership`) and ``study.json``.
         An existing folder must be empty or a study folder; the sub-folders of the
-        analyses its ``study.json`` names are replaced too, so no stale analysis stays.
+        analyses its ``study.json`` names are replaced too, so no stale analysis stays, and
+        so is a study report (:data:`REPORT_FOLDER`) of earlier results.
         """
         folder = Path(folder)
-        owned = {STUDY_FILE, *STUDY_TABLES, *self.evaluations, *_saved_analyses(folder)}
+        owned = {STUDY_FILE, *STUDY_TABLES, REPORT_FOLDER, *self.evaluations,
+                 *_saved_analyses(folder)}
 
         def write(tmp: Path) -> None:
             for name, evaluation in self.evaluations.items():
@@ -108,6 +113,65 @@ class Study:
             write_json(tmp / STUDY_FILE, self.run)
 
         return replace_folder(folder, write, owned=owned)
+
+    @classmethod
+    def load(cls, folder: str | Path) -> Study:
+        """Read a study folder written by :meth:`save`.
+
+        Every analysis ``study.json`` lists is read from its sub-folder with
+        :meth:`Evaluation.load <casemix.evaluation.evaluate.Evaluation.load>`, in the order
+        listed (the plan's); ``recipients.csv`` gives :attr:`membership` (codes as written).
+
+        Parameters
+        ----------
+        folder : str or Path
+            The folder written by ``Study.save``.
+
+        Returns
+        -------
+        Study
+
+        Raises
+        ------
+        InputError
+            Not a folder, no or malformed ``study.json``, a missing ``recipients.csv`` or
+            column of it, or an analysis folder that cannot be read (the message names the
+            analysis and the file).
+        """
+        folder = Path(folder)
+        if not folder.is_dir():
+            raise InputError(f"{folder}: not a folder; pass the folder a study was saved to.")
+        path = folder / STUDY_FILE
+        if not path.is_file():
+            raise InputError(f"{folder}: no {STUDY_FILE}, so this is not a study folder; pass "
+                             "the folder `casemix evaluate --model MODELS_FOLDER` wrote.")
+        try:
+            run = json.loads(path.read_text(encoding="utf-8"))
+            names = [str(entry["folder"]) for entry in run["analyses"]]
+        except ValueError as exc:
+            raise InputError(f"{path}: not valid JSON ({exc}); write the study again.") from None
+        except (KeyError, TypeError):
+            raise InputError(f"{path}: needs a list 'analyses' whose entries have a "
+                             "'folder'; write the study again.") from None
+        if not names or len(set(names)) != len(names):
+            raise InputError(f"{path}: 'analyses' must list one or more distinct folders; "
+                             f"it lists {names}.")
+        evaluations = {}
+        for name in names:
+            try:
+                evaluations[name] = Evaluation.load(folder / name)
+            except InputError as exc:
+                raise InputError(f"analysis '{name}' of {path}: {exc}") from None
+        members = folder / "recipients.csv"
+        if not members.is_file():
+            raise InputError(f"{members}: missing; write the study again.")
+        membership = read_csv_as_written(members, ["recipient", "program", "transplant_date"])
+        missing = [c for c in ("recipient", "program", "transplant_date", *names)
+                   if c not in membership.columns]
+        if missing:
+            raise InputError(f"{members}: missing column(s) {', '.join(missing)}; write the "
+                             "study again.")
+        return cls(evaluations=MappingProxyType(evaluations), membership=membership, run=run)
 
 
 def evaluate_plan(
