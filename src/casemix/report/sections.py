@@ -38,10 +38,13 @@ __all__ = [
     "each_program_section",
     "evaluated_section",
     "glance_headers",
+    "interval_text",
     "model_section",
     "overview_section",
+    "prior_text",
     "program_anchor",
     "reach_text",
+    "rules_text",
     "scale_section",
     "table_section",
     "verdict_html",
@@ -91,7 +94,8 @@ def _num(value: float, digits: int = 2) -> str:
     return MISSING if pd.isna(value) else f"{value:.{digits}f}"
 
 
-def _interval(centre: float, lower: float, upper: float, digits: int = 2) -> str:
+def interval_text(centre: float, lower: float, upper: float, digits: int = 2) -> str:
+    """A value with its interval, ``"1.14 (0.85–1.52)"``; an en dash when missing."""
     if pd.isna(centre):
         return MISSING
     return f"{centre:.{digits}f} ({_num(lower, digits)}–{_num(upper, digits)})"
@@ -128,7 +132,8 @@ def _window_text(window: object) -> str:
     return f"transplanted {window[0]} to {window[1]}"
 
 
-def _prior_text(prior: dict) -> str:
+def prior_text(prior: dict) -> str:
+    """The prior of run.json in words (kind, mean and spread)."""
     shape, rate = prior.get("shape"), prior.get("rate")
     mean = prior.get("mean", shape / rate if shape and rate else None)
     method = str(prior.get("method", "")).replace("_", " ")
@@ -156,7 +161,8 @@ def _multiplicity_text(many: dict | None) -> str:
             f"(this network has {many['flags']})")
 
 
-def _rules_text(rules: dict) -> str:
+def rules_text(rules: dict) -> str:
+    """The verdict rules of run.json in words."""
     probability = rules.get("probability", 0.975)
     upper, lower = rules.get("upper_margin", 1.0), rules.get("lower_margin", 1.0)
     return (
@@ -189,13 +195,13 @@ def evaluated_section(data: Evaluation, options: ReportOptions) -> Section:
                             f"{_count(model.get('events'), options)} events; concordance "
                             f"{_num(model.get('concordance'), 3)}; ties: {model.get('ties')}"),
         ("Model fingerprint", model.get("fingerprint")),
-        ("Prior", _prior_text(prior)),
+        ("Prior", prior_text(prior)),
         ("About the prior", prior.get("note")),
         ("Shrunk towards", prior.get("centre", MISSING)),
         ("Whole network", _network_text(run.get("network"))),
         ("Expected false flags", _multiplicity_text(run.get("multiplicity"))),
         ("Credible intervals", f"{run.get('credible_level', 0.95):.0%}"),
-        ("Verdict rules", _rules_text(run["rules"])),
+        ("Verdict rules", rules_text(run["rules"])),
         ("Records", f"{_count(counts.get('read'), options)} read, "
                     f"{_count(counts.get('kept'), options)} kept, "
                     f"{_count(counts.get('excluded'), options)} excluded"
@@ -222,7 +228,7 @@ def _survival_cell(row: pd.Series, column: str) -> str:
     lower, upper = row.get(f"{column}_lower"), row.get(f"{column}_upper")
     if lower is None or upper is None:
         return _num(row[column], 3)
-    return _interval(row[column], lower, upper, 3)
+    return interval_text(row[column], lower, upper, 3)
 
 
 def _glance_frame(data: Evaluation, options: ReportOptions) -> pd.DataFrame:
@@ -234,8 +240,10 @@ def _glance_frame(data: Evaluation, options: ReportOptions) -> pd.DataFrame:
         "recipients": counts_text(programs["recipients"], options),
         "observed": counts_text(programs["observed"], options),
         "expected": [_num(e, 1) for e in programs["expected"]],
-        "oe": [_interval(*r) for r in programs[["oe_ratio", "oe_lower", "oe_upper"]].to_numpy()],
-        "hr": [_interval(*r) for r in programs[["hr_mean", "hr_lower", "hr_upper"]].to_numpy()],
+        "oe": [interval_text(*r)
+               for r in programs[["oe_ratio", "oe_lower", "oe_upper"]].to_numpy()],
+        "hr": [interval_text(*r)
+               for r in programs[["hr_mean", "hr_lower", "hr_upper"]].to_numpy()],
         "p_above": [_num(p, 3) for p in programs["p_above"]],
         "p_below": [_num(p, 3) for p in programs["p_below"]],
         "observed_survival": [_survival_cell(r, "observed_survival")
@@ -444,8 +452,8 @@ def _program_block(data: Evaluation, position: int, row: pd.Series,
         verdict_html(row["verdict"], palette), _count(row["recipients"], options),
         "recipient" if row["recipients"] == 1 else "recipients",
         _count(row["observed"], options), row["expected"],
-        _interval(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
-        _interval(row["hr_mean"], row["hr_lower"], row["hr_upper"]))
+        interval_text(row["oe_ratio"], row["oe_lower"], row["oe_upper"]),
+        interval_text(row["hr_mean"], row["hr_lower"], row["hr_upper"]))
     rules = data.run["rules"]
     what_if = Markup("<p>{}</p><p>What this program can show: {} (true hazard ratios at which "
                      "the verdict would be reached with a {:.0%} chance, under the rules in "
