@@ -65,3 +65,26 @@ def parse_strict(html: str) -> StrictHTML:
 def strict_html():
     """A function that parses HTML strictly (see :func:`parse_strict`)."""
     return parse_strict
+
+
+@pytest.fixture(scope="session")
+def demo_study(tmp_path_factory):
+    """The demo's study plan run (casemix.demo, six analyses) and its inputs, saved.
+
+    Returns (study, paths, reference records, cohort records, study folder).
+    """
+    import warnings
+
+    from casemix import demo, read_records
+    from casemix.errors import CasemixWarning
+    from casemix.evaluation.study import evaluate_plan
+    from casemix.model.plan import fit_plan
+
+    paths = demo.write_demo(tmp_path_factory.mktemp("demo-study"))
+    reference = read_records(paths["reference"], paths["spec"], cutoff=demo.REFERENCE_CUTOFF)
+    cohort = read_records(paths["cohort"], paths["spec"], cutoff=demo.COHORT_CUTOFF)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", CasemixWarning)  # the demo plan warns of nothing
+        study = evaluate_plan(cohort, fit_plan(reference), paths["rules"])
+    folder = study.save(tmp_path_factory.mktemp("demo-study-out") / "study")
+    return study, paths, reference, cohort, folder

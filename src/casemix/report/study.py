@@ -539,8 +539,8 @@ def _program_page(code: str, study: Study, split: Mapping[str, _ByProgram],
     sections += [_analysis_section(code, name, ev, split[name], palette)
                  for name, ev in study.evaluations.items()]
     sections += [_program_quality_section(code, study, split), evaluated]
-    back = Markup('<p class="note">The whole network: <a href="../{}">{}</a> (beside this '
-                  "page's folder).</p>").format(NETWORK_PAGE, NETWORK_PAGE)
+    back = Markup('<p class="note">Every program: the network page, <a href="../{}">{}</a>, '
+                  "in the folder above this page's.</p>").format(NETWORK_PAGE, NETWORK_PAGE)
     sections[0] = Section(sections[0].title, _join([Markup(sections[0].html), back]),
                           anchor=sections[0].anchor)
     return _page(f"Program {code}: every analysis", sections, study, _summary(study))

@@ -132,7 +132,7 @@ def survival_svg(curve: pd.DataFrame, *, horizon_days: float, at_risk: Sequence[
         values = {c: np.r_[1.0, v] for c, v in values.items()}
     lowest = float(np.nanmin(np.r_[values["observed_lower"], values["expected"], 1.0]))
     bottom = max(0.0, np.floor((lowest - 0.02) * 20) / 20)
-    width, height, left, right, top, plot_bottom = 460, 292, 46, 12, 10, 214
+    width, height, left, right, top, plot_bottom = 460, 306, 46, 12, 30, 228
     span = plot_bottom - top
 
     def x(t):
@@ -142,7 +142,8 @@ def survival_svg(curve: pd.DataFrame, *, horizon_days: float, at_risk: Sequence[
         return plot_bottom - span * (s - bottom) / (1.005 - bottom)
 
     body = []
-    for tick in np.linspace(bottom, 1.0, 5 if bottom <= 0.8 else 3):
+    step = 0.05 if bottom >= 0.8 else 0.1 if bottom >= 0.5 else 0.25
+    for tick in np.arange(1.0, bottom - 1e-9, -step):
         body.append(_line(left, y(tick), width - right, y(tick), _GRID))
         body.append(_text(left - 4, y(tick) + 3.5, f"{tick:.2f}", anchor="end", size=10))
     inside = times <= horizon_days
@@ -167,12 +168,13 @@ def survival_svg(curve: pd.DataFrame, *, horizon_days: float, at_risk: Sequence[
     body.append(_text((left + width - right) / 2, plot_bottom + 28, "Days since transplant",
                       anchor="middle", size=10, fill=LIMIT_INK))
     body.append(_text(left, plot_bottom + 43, "Number at risk", size=10, fill=LIMIT_INK))
-    body.append(_line(left + 6, top + 8, left + 26, top + 8, INK, 1.6))
-    body.append(_text(left + 30, top + 11.5, "observed (Kaplan-Meier)", size=10))
-    body.append(_line(left + 175, top + 8, left + 195, top + 8, _EXPECTED, 1.6, "5 3"))
-    body.append(_text(left + 199, top + 11.5, "expected for these recipients", size=10))
-    body.append(f'<rect x="{left + 6}" y="{top + 17}" width="20" height="8" fill="{_BAND}"/>')
-    body.append(_text(left + 30, top + 25, "95% interval (observed)", size=10))
+    # the legend above the plot, where it cannot hide a curve
+    body.append(_line(6, 8, 26, 8, INK, 1.6))
+    body.append(_text(30, 11.5, "observed (Kaplan-Meier)", size=10))
+    body.append(f'<rect x="166" y="4" width="20" height="8" fill="{_BAND}"/>')
+    body.append(_text(190, 11.5, "95% interval", size=10))
+    body.append(_line(264, 8, 284, 8, _EXPECTED, 1.6, "5 3"))
+    body.append(_text(288, 11.5, "expected for these recipients", size=10))
     return _svg(width, height, body, alt)
 
 
