@@ -171,6 +171,9 @@ def test_demo_writes_its_files_flat_and_the_study_plan_in_two_folders(demo_dir, 
     for code in PROGRAMS:
         assert code in output
     assert f"report: {demo_dir / 'report.html'}" in output
+    assert f"study report: {demo_dir / 'study' / 'report' / 'index.html'}" in output
+    pages = demo_dir / "study" / "report"
+    assert (pages / "network.html").is_file() and len(list((pages / "programs").iterdir())) == 16
     assert "not a finding about quality of care" in output
     # not a terminal: the progress bar stays quiet
     assert "fitting the reference model" not in output
@@ -855,6 +858,35 @@ def test_evaluate_with_a_models_folder_runs_every_analysis(plan_models, demo_dir
     assert list(overview["analysis"].unique()) == PLAN
     assert (out / "graft_1y" / "programs.csv").read_bytes() == (
         demo_dir / "programs.csv").read_bytes()
+
+
+def test_report_of_a_study_folder_writes_the_study_pages(plan_models, demo_dir, tmp_path):
+    folder, _ = plan_models
+    out = tmp_path / "study"
+    assert_exit(invoke("evaluate", demo_dir / "cohort.csv", "--model", folder, "--rules",
+                       demo_dir / "rules.toml", "--cutoff", COHORT_CUTOFF, "--out", out), 0,
+                re.escape(f"study report: {out / 'report' / 'index.html'}"))
+    network = (out / "report" / "network.html").read_text(encoding="utf-8")
+    assert all(name in network for name in PLAN)
+    (out / "report" / "network.html").unlink()
+    assert_exit(invoke("report", out), 0,
+                re.escape(f"study report: {out / 'report' / 'index.html'}"))
+    assert (out / "report" / "network.html").read_text(encoding="utf-8") == network
+    assert_exit(invoke("report", out, "--out", tmp_path / "pages"), 0)
+    assert (tmp_path / "pages" / "network.html").read_text(encoding="utf-8") == network
+
+
+def test_report_of_a_study_folder_refuses_suppression_and_an_audit(plan_models, demo_dir,
+                                                                   tmp_path):
+    folder, _ = plan_models
+    out = tmp_path / "study"
+    assert_exit(invoke("evaluate", demo_dir / "cohort.csv", "--model", folder, "--rules",
+                       demo_dir / "rules.toml", "--cutoff", COHORT_CUTOFF, "--no-report",
+                       "--out", out), 0)
+    assert_exit(invoke("report", out, "--suppress-below", 11), 2,
+                "--suppress-below is not available for a study report")
+    assert_exit(invoke("report", out, "--audit", tmp_path), 2, "--audit belongs to one")
+    assert not (out / "report").exists() and not (out / "public").exists()
 
 
 def test_plan_runs_refuse_options_of_one_analysis(plan_models, demo_dir, tmp_path):

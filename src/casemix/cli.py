@@ -429,7 +429,9 @@ def evaluate(
     window_from: FromOption = None,
     window_to: ToOption = None,
     report: Annotated[
-        bool, typer.Option("--report/--no-report", help="Also write report.html.")
+        bool, typer.Option("--report/--no-report",
+                           help="Also write report.html (a study plan: the study report, "
+                                "report/index.html).")
     ] = True,
 ) -> None:
     """Evaluate every program of a cohort against a reference model; write the evaluation files.
@@ -489,16 +491,15 @@ def _evaluate_plan(records, models_folder: Path, rules, chosen, cutoff, out_dir:
 
     with _guarded():
         models = PlanModels.load(models_folder)
-        with _steps(len(models) * (1 + report) + 2) as step:
+        with _steps(len(models) + report + 2) as step:
             options = _prior_options(chosen)
             study = evaluate_plan(records, models, rules, options.pop("prior"), cutoff=cutoff,
                                   progress=step, **options)
             step("writing files")
             study.save(out_dir)
             if report:
-                for name in study:
-                    step(f"report of {name}")
-                    _write_report(out_dir / name)
+                step("writing the study report")
+                _write_study_report(study, out_dir)
             step("done")
     return study
 
@@ -529,8 +530,25 @@ def _plan_summary(study, folder: Path, report: bool) -> None:
         "uncertain; decisions belong to clinical review."
     )
     out.print(f"study written to {folder}: one folder per analysis, overview.csv (every "
-              "program and analysis), recipients.csv (cohort membership)"
-              + ("; a report.html in each analysis folder" if report else ""))
+              "program and analysis), recipients.csv (cohort membership)")
+    if report:
+        out.print(f"study report: {_study_report_index(folder)}", markup=False)
+
+
+def _study_report_index(folder: Path) -> Path:
+    from casemix.evaluation.study import REPORT_FOLDER
+    from casemix.report.study import INDEX_PAGE
+
+    return folder / REPORT_FOLDER / INDEX_PAGE
+
+
+def _write_study_report(study, folder: Path, out_folder: Path | None = None) -> Path:
+    """The study report (index, network and program pages), by default in FOLDER/report."""
+    from casemix.evaluation.study import REPORT_FOLDER
+    from casemix.report.study import write_study_report
+
+    return write_study_report(study, folder / REPORT_FOLDER if out_folder is None
+                              else out_folder)
 
 
 def _write_report(folder: Path, out_file: Path | None = None, suppress_below=None, audit=None):
@@ -616,13 +634,15 @@ def _summary(result, folder: Path, report: bool, given: str | None = None) -> No
 @app.command()
 def report(
     folder: Annotated[
-        Path, typer.Argument(exists=True, file_okay=False, help="Evaluation folder.",
+        Path, typer.Argument(exists=True, file_okay=False,
+                             help="Evaluation folder, or a study folder (with study.json).",
                              metavar="FOLDER")
     ],
     out_file: Annotated[
         Path | None,
         typer.Option("--out", help="Report file (.html); with --suppress-below, the public "
-                                   "release folder (default FOLDER/public)."),
+                                   "release folder (default FOLDER/public); for a study, "
+                                   "the report folder (default FOLDER/report)."),
     ] = None,
     suppress_below: Annotated[
         int | None,
@@ -644,8 +664,17 @@ def report(
     figure from which they could be worked out are withheld or coarsened (docs/disclosure.md).
     The internal files and report are not touched.
 
+    For a study folder (`casemix evaluate --model MODELS_FOLDER`), write the study report:
+    FOLDER/report/index.html, network.html (every program in every analysis) and a page per
+    program in programs/. --suppress-below and --audit are refused there.
+
     Example: casemix report results --suppress-below 11
+
+    Example: casemix report study
     """
+    if (folder / "study.json").is_file():
+        _study_report(folder, out_file, suppress_below, audit)
+        return
     with _guarded():
         if suppress_below is None:
             path = _write_report(folder, out_file, None, audit)
@@ -661,6 +690,25 @@ def report(
                       f"give them back withheld): {public}")
             path = public / "report.html"
     out.print(f"report: {path}")
+
+
+def _study_report(folder: Path, out_folder: Path | None, suppress_below, audit) -> None:
+    """`casemix report` on a study folder: load the Study, write its pages."""
+    if audit is not None:
+        err.print("error: --audit belongs to one evaluation; pass an analysis folder of the "
+                  f"study (for example {folder / 'graft_1y'}) with --audit", markup=False)
+        raise typer.Exit(2)
+    if suppress_below is not None:
+        err.print("error: --suppress-below is not available for a study report yet: its "
+                  "pages would show counts the disclosure rule hides. Write the public release "
+                  f"of each analysis instead: casemix report {folder / 'ANALYSIS'} "
+                  f"--suppress-below {suppress_below}", markup=False)
+        raise typer.Exit(2)
+    from casemix.evaluation.study import Study
+
+    with _guarded():
+        index = _write_study_report(Study.load(folder), folder, out_folder)
+    out.print(f"study report: {index}", markup=False)
 
 
 @app.command()
@@ -827,7 +875,7 @@ def demo(
         paths = scenario.write_demo(out_dir, seed=seed)
         plan = load_spec(paths["spec"]).analyses
         fits = {(a.outcome, a.horizon_days, a.reference_window) for a in plan.values()}
-        with _steps(7 + len(fits) + len(plan)) as step:
+        with _steps(8 + len(fits) + len(plan)) as step:
             result, monitoring, study = _demo_steps(paths, out_dir, step)
     out.print(
         "Lorran Valley Transplant Network (invented data): graft failure within 365 days, "
@@ -838,7 +886,7 @@ def demo(
     _monitor_summary(monitoring, out_dir)
     out.print(f"The study plan of {out_dir / 'spec.toml'}: every analysis, models in "
               f"{out_dir / 'models'}", markup=False)
-    _plan_summary(study, out_dir / "study", False)
+    _plan_summary(study, out_dir / "study", True)
 
 
 def _demo_steps(paths: dict, out_dir: Path, step: Callable[[str], None]):
@@ -872,6 +920,8 @@ def _demo_steps(paths: dict, out_dir: Path, step: Callable[[str], None]):
                           progress=step)
     step("writing the study")
     study.save(out_dir / "study")
+    step("writing the study report")
+    _write_study_report(study, out_dir / "study")
     step("done")
     return result, monitoring, study
 
