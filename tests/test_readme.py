@@ -230,7 +230,7 @@ def test_plan_commands_run_on_the_demo_files(demo_folder):
     out = folder / _option(commands(block)[1], "--out")
     assert (folder / _option(commands(block)[0], "--out") / "index.json").is_file()
     for product in ("overview.csv", "recipients.csv", "study.json", "graft_3y/programs.csv",
-                    "graft_3y/report.html"):
+                    "report/index.html", "report/network.html"):
         assert (out / product).is_file(), product
 
 
