@@ -21,6 +21,7 @@ from casemix.stats.poisson import funnel_limits
 from casemix.stats.verdict import verdict_colours
 
 __all__ = [
+    "EXPECTED_INK",
     "FUNNEL_LEVELS",
     "INK",
     "LIMIT_INK",
@@ -50,7 +51,8 @@ INK = "#1d2125"
 """Colour of text, points and axes in the report's figures."""
 LIMIT_INK = "#4d555c"
 """Colour of limit lines (funnel limits, control limits)."""
-_EXPECTED = "#009E73"  # Okabe-Ito bluish green: not one of the verdict colours
+EXPECTED_INK = "#009E73"
+"""Colour of the expected curve (Okabe-Ito bluish green: not one of the verdict colours)."""
 _BAR = "#5b6770"
 _STYLE = {
     "font.size": 8.5,
@@ -295,7 +297,7 @@ def survival_figure(
                     color="#c9ced3", alpha=0.6, lw=0, label="95% interval (observed)")
     ax.step(data["time"], data["observed"], where="post", color=INK, lw=1.4,
             label="observed (Kaplan-Meier)", gid="observed")
-    ax.step(data["time"], data["expected"], where="post", color=_EXPECTED, lw=1.4, ls="--",
+    ax.step(data["time"], data["expected"], where="post", color=EXPECTED_INK, lw=1.4, ls="--",
             label="expected for these recipients", gid="expected")
     lowest = np.nanmin(np.r_[data["observed_lower"], data["expected"], 1.0])
     ax.set_ylim(max(0.0, np.floor((lowest - 0.02) * 20) / 20), 1.005)

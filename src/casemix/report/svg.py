@@ -23,13 +23,19 @@ import numpy as np
 import pandas as pd
 from markupsafe import Markup, escape
 
-from casemix.report.plots import FUNNEL_LEVELS, INK, LIMIT_INK, VERDICT_WORDS, at_risk_times
+from casemix.report.plots import (
+    EXPECTED_INK,
+    FUNNEL_LEVELS,
+    INK,
+    LIMIT_INK,
+    VERDICT_WORDS,
+    at_risk_times,
+)
 from casemix.stats.poisson import funnel_limits
 from casemix.stats.verdict import verdict_colours
 
 __all__ = ["casemix_svg", "caterpillar_svg", "funnel_svg", "survival_svg"]
 
-_EXPECTED = "#009E73"  # as in casemix.report.plots: not one of the verdict colours
 _BAND = "#c9ced3"
 _BAR = "#5b6770"
 _GRID = "#e3e6e8"
@@ -155,7 +161,7 @@ def survival_svg(curve: pd.DataFrame, *, horizon_days: float, at_risk: Sequence[
         body.append(f'<path d="{_path(upper + lower[::-1])}Z" fill="{_BAND}" '
                     'fill-opacity="0.7" stroke="none"/>')
     body.append(f'<path d="{_path(_steps(t, v["expected"], x, y))}" fill="none" '
-                f'stroke="{_EXPECTED}" stroke-width="1.6" stroke-dasharray="5 3"/>')
+                f'stroke="{EXPECTED_INK}" stroke-width="1.6" stroke-dasharray="5 3"/>')
     body.append(f'<path d="{_path(_steps(t, v["observed"], x, y))}" fill="none" '
                 f'stroke="{INK}" stroke-width="1.6"/>')
     body.append(_line(left, plot_bottom, width - right, plot_bottom, _AXIS))
@@ -173,7 +179,7 @@ def survival_svg(curve: pd.DataFrame, *, horizon_days: float, at_risk: Sequence[
     body.append(_text(30, 11.5, "observed (Kaplan-Meier)", size=10))
     body.append(f'<rect x="166" y="4" width="20" height="8" fill="{_BAND}"/>')
     body.append(_text(190, 11.5, "95% interval", size=10))
-    body.append(_line(264, 8, 284, 8, _EXPECTED, 1.6, "5 3"))
+    body.append(_line(264, 8, 284, 8, EXPECTED_INK, 1.6, "5 3"))
     body.append(_text(288, 11.5, "expected for these recipients", size=10))
     return _svg(width, height, body, alt)
 
