@@ -349,10 +349,15 @@ def _network_facts(programs: pd.DataFrame, prior: Prior, rules: Rules) -> dict[s
     }
 
 
+def _share_text(value: float) -> str:
+    """An expected count in words: "about 0.15"; "fewer than 0.01" rather than "5.4e-21"."""
+    return f"about {value:.2g}" if value >= 0.01 else "fewer than 0.01"
+
+
 def _network_cautions(run: dict, prior: Prior) -> list[str]:
     network, many = run["network"], run["multiplicity"]
     cautions = [
-        f"Under these rules about {many['expected_false_flags']:.2g} of the "
+        f"Under these rules {_share_text(many['expected_false_flags'])} of the "
         f"{many['programs_judged']} programs judged would get a verdict other than consistent "
         "even if every program's true hazard ratio were 1: verdicts are screening signals."
     ]
