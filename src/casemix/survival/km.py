@@ -5,7 +5,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-from scipy import stats
 
 from casemix.errors import InputError
 from casemix.survival.validate import as_time_event, as_weights
@@ -97,6 +96,8 @@ def kaplan_meier(time, event, weights=None, level: float = 0.95) -> KaplanMeier:
     """
     if not 0 < level < 1:
         raise InputError(f"level must lie between 0 and 1; got {level}")
+    from scipy import stats  # here, not at import: the Cox fit's path does not need it
+
     time, event = as_time_event(time, event)
     if time.size == 0:
         raise InputError("no rows: a Kaplan-Meier curve needs at least one recipient")
