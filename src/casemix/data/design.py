@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from casemix.data.records import clean_text, format_rows
+from casemix.data.records import _is_text_column, clean_text, format_rows
 from casemix.data.spec import SPLINE_KNOT_QUANTILES, Covariate, Spec, closest
 from casemix.errors import InputError, ModelFileError, SpecError, plural
 
@@ -127,8 +127,8 @@ class Term:
         """Columns of this covariate for ``frame``, shape (n, len(self.columns))."""
         series = _column(frame, self.column, self.name)
         if self.kind == "categorical":
-            values, missing = self._levels_of(series)
-            block = (values.to_numpy()[:, None] == np.array(self.levels[1:])[None, :])
+            position, missing = self._levels_of(series)
+            block = position[:, None] == np.arange(1, len(self.levels))[None, :]
         else:
             x = _numbers(series, self)
             missing = np.isnan(x)
@@ -140,28 +140,35 @@ class Term:
             block = np.column_stack([block, missing.astype(float)])
         return block
 
-    def _levels_of(self, series: pd.Series) -> tuple[pd.Series, np.ndarray]:
-        text = clean_text(series)
-        missing = text.isna().to_numpy()
+    def _levels_of(self, series: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+        """Position in ``levels`` of each row's level (missing: the reference, 0; a level
+        outside ``levels``: -1) and which rows are missing. Worked out once per distinct cell."""
+        codes, text = _distinct_text(series)
+        gone = np.array([t is None for t in text], dtype=bool)
         if self.missing == "category" and MISSING_LEVEL in self.levels:
-            text = text.fillna(MISSING_LEVEL)
-            missing = np.zeros(len(text), dtype=bool)
+            text = text.copy()
+            text[gone] = MISSING_LEVEL
+            gone = np.zeros(len(text), dtype=bool)
+        missing = gone[codes]
         self._check_missing(series, missing, False)
-        unseen = text.notna() & ~text.isin(self.levels)
-        if unseen.any() and self.other is not None:
-            text = text.mask(unseen, self.other)
-        elif unseen.any():
-            found = sorted(text[unseen].unique())
+        known = {level: i for i, level in enumerate(self.levels)}
+        new = np.array([t is not None and t not in known for t in text], dtype=bool)
+        unseen = new[codes]
+        if unseen.any() and self.other is None:
+            found = sorted(set(text[new]))
             raise InputError(
                 f"covariate {self.name} (column '{self.column}') has "
                 f"{'a level' if len(found) == 1 else 'levels'} the reference population does "
                 f"not have: {', '.join(repr(v) for v in found[:5])} in "
-                f"{format_rows(series.index[unseen.to_numpy()])}. Known levels: "
+                f"{format_rows(series.index[unseen])}. Known levels: "
                 f"{', '.join(self.levels)}. Recode them, or declare "
                 f"`other = \"...\"` in [covariates.{self.name}] and fit the reference model "
                 "again (a fitted model keeps the spec it was fitted with)."
             )
-        return text.fillna(self.levels[0]), missing
+        level = [self.other if n else (self.levels[0] if t is None else t)
+                 for t, n in zip(text, new, strict=True)]
+        position = np.array([known.get(v, -1) for v in level], dtype=np.int64)
+        return position[codes], missing
 
     def _check_missing(self, series: pd.Series, missing: np.ndarray, filled: bool) -> None:
         if not missing.any() or self.indicator or filled:
@@ -393,21 +400,41 @@ def _column(frame: pd.DataFrame, column: str, name: str) -> pd.Series:
 
 def _numbers(series: pd.Series, term: Term | Covariate) -> np.ndarray:
     """Float values of a numeric, spline or binary covariate (NaN where missing)."""
-    if pd.api.types.is_bool_dtype(series):
-        values = series.astype(float)
+    if isinstance(series.dtype, np.dtype) and series.dtype.kind == "f":
+        # As read_records leaves the column: nothing to parse, NaN is missing.
+        values = series.to_numpy(dtype=float)
+        bad = np.zeros(len(values), dtype=bool)
     else:
-        values = pd.to_numeric(series, errors="coerce").astype(float)
-    bad = values.isna() & series.notna()
+        parsed = (series.astype(float) if pd.api.types.is_bool_dtype(series)
+                  else pd.to_numeric(series, errors="coerce").astype(float))
+        values = parsed.to_numpy(dtype=float)
+        bad = np.isnan(values) & series.notna().to_numpy()
     if term.kind == "binary":
-        bad |= values.notna() & ~values.isin([0.0, 1.0])
+        bad |= ~np.isnan(values) & (values != 0.0) & (values != 1.0)
     if bad.any():
         what = "0 or 1" if term.kind == "binary" else "a number"
         raise InputError(
             f"covariate {term.name} (column '{term.column}') is not {what} in "
-            f"{format_rows(series.index[bad.to_numpy()])} (for example "
+            f"{format_rows(series.index[bad])} (for example "
             f"{series[bad].iloc[0]!r}); read the data with read_records, which checks types."
         )
-    return values.to_numpy(dtype=float)
+    return values
+
+
+def _distinct_text(series: pd.Series) -> tuple[np.ndarray, np.ndarray]:
+    """Each row's code and the cleaned text of each code (``clean_text``; None if missing).
+
+    The cells of a text column are cleaned once per distinct cell (the last code stands for
+    the missing cells); other columns are cleaned whole first, so that 1 and 1.0 stay apart.
+    """
+    if _is_text_column(series):
+        codes, distinct = pd.factorize(series)
+        cleaned = clean_text(pd.Series(np.asarray(distinct, dtype=object), dtype=object))
+    else:
+        codes, distinct = pd.factorize(clean_text(series))
+        cleaned = pd.Series(np.asarray(distinct, dtype=object), dtype=object)
+    text = np.append(cleaned.to_numpy(dtype=object), None)
+    return np.where(codes < 0, len(text) - 1, codes), text
 
 
 def _strata_labels(frame: pd.DataFrame, column: str) -> pd.Series:
@@ -460,18 +487,24 @@ def _knots(seen: np.ndarray, cov: Covariate) -> tuple[float, ...]:
 
 
 def _fit_categorical(series: pd.Series, cov: Covariate, spec: Spec) -> Term:
-    text = clean_text(series)
-    has_missing = bool(text.isna().any())
+    codes, text = _distinct_text(series)
+    cells = np.bincount(codes, minlength=len(text))
+    gone = np.array([t is None for t in text], dtype=bool)
+    has_missing = bool(cells[gone].any())
     if cov.missing == "category" and has_missing:
-        if (text == MISSING_LEVEL).any():
+        if MISSING_LEVEL in set(text[cells > 0]):
             raise SpecError(
                 f"{spec.where}: covariate {cov.name} already has a level '{MISSING_LEVEL}', "
                 f"so missing = \"category\" would merge missing values into it; recode that "
                 "level or use missing = \"indicator\"."
             )
-        text = text.fillna(MISSING_LEVEL)
-    counts = text.value_counts(dropna=True)
-    found = sorted(counts.index)
+        text = text.copy()
+        text[gone] = MISSING_LEVEL
+    counts: dict[str, int] = {}
+    for level, n in zip(text, cells.tolist(), strict=True):
+        if level is not None and n:
+            counts[level] = counts.get(level, 0) + n
+    found = sorted(counts)
     if len(found) < 2:
         raise InputError(
             f"covariate {cov.name} (column '{cov.column}') has "
@@ -480,7 +513,7 @@ def _fit_categorical(series: pd.Series, cov: Covariate, spec: Spec) -> Term:
         )
     for key in ("reference", "other"):
         level = getattr(cov, key)
-        if level is not None and level not in counts.index:
+        if level is not None and level not in counts:
             raise SpecError(
                 f"{spec.where}: 'covariates.{cov.name}.{key}' = {level!r} does not occur in "
                 f"the reference population{closest(level, found)}; its levels are "
