@@ -329,15 +329,38 @@ def apply_window(records: Records, cutoff: object,
             "cut-off and the window (--cutoff, --from, or [analysis] in the spec)."
         )
     tx = records.frame[records.spec.columns.transplant_date]
-    reasons = _after_death_reasons(records.frame, records.spec,
-                                   _window_reasons(tx, stamp, start, end))
-    return _exclusions(records, reasons), tx.index[reasons["reason"].isna().to_numpy()]
+    reasons = _window_reasons(tx, stamp, start, end)
+    _after_death_reasons(records.frame, records.spec, reasons)
+    return _exclusions(records, reasons), tx.index[~reasons.hit]
+
+
+@dataclass
+class _Reasons:
+    """Exclusion reason text and kind of the records they apply to (None elsewhere).
+
+    Only the few excluded records get text; the masks cover every record.
+    """
+
+    hit: np.ndarray
+    reason: np.ndarray
+    kind: np.ndarray
+
+    @classmethod
+    def none(cls, n: int) -> _Reasons:
+        return cls(np.zeros(n, dtype=bool), np.full(n, None, dtype=object),
+                   np.full(n, None, dtype=object))
+
+    def add(self, mask: np.ndarray, reason: np.ndarray | list[str], kind: str) -> None:
+        """Give ``reason`` (one per masked record) and ``kind`` to the masked records."""
+        self.reason[mask] = reason
+        self.kind[mask] = kind
+        self.hit |= mask
 
 
 def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timestamp | None,
-                    end: pd.Timestamp | None) -> pd.DataFrame:
-    """Reason text and kind for recipients outside the cut-off or window (missing otherwise)."""
-    reasons = pd.DataFrame({"reason": None, "kind": None}, index=tx.index, dtype=object)
+                    end: pd.Timestamp | None) -> _Reasons:
+    """Reasons for recipients outside the cut-off or window (the first that applies)."""
+    reasons = _Reasons.none(len(tx))
     checks = [] if cutoff is None else [(tx > cutoff, f", after the cut-off {cutoff:%Y-%m-%d}",
                                          "transplanted after the cut-off")]
     if end is not None:
@@ -347,43 +370,47 @@ def _window_reasons(tx: pd.Series, cutoff: pd.Timestamp | None, start: pd.Timest
         checks.append((tx < start, f", before the cohort window (from {start:%Y-%m-%d})",
                        WINDOW_KIND))
     for mask, text, kind in checks:
-        mask = mask & reasons["reason"].isna()
-        day = tx[mask].dt.strftime("%Y-%m-%d")  # only the few excluded: strftime is slow
-        reasons.loc[mask, "reason"] = ("transplanted " + day + text).to_numpy(dtype=object)
-        reasons.loc[mask, "kind"] = kind
+        mask = mask.to_numpy() & ~reasons.hit
+        if mask.any():
+            day = tx[mask].dt.strftime("%Y-%m-%d")  # only the few excluded: strftime is slow
+            reasons.add(mask, ("transplanted " + day + text).to_numpy(dtype=object), kind)
     return reasons
 
 
-def _after_death_reasons(frame: pd.DataFrame, spec, reasons: pd.DataFrame) -> pd.DataFrame:
+def _after_death_reasons(frame: pd.DataFrame, spec, reasons: _Reasons) -> None:
     """Add a reason for records with a last-seen or outcome date after the death date."""
     death_column = spec.columns.death
     if death_column is None:
-        return reasons
+        return
     death = frame[death_column]
     later = [c for c in (spec.columns.last_seen, *spec.event_columns) if c != death_column]
-    text = pd.Series("", index=frame.index, dtype=object)
-    for column in later:
-        hit = (frame[column] > death).to_numpy()
-        text[hit] = text[hit] + f"{column} " + frame.loc[hit, column].dt.strftime("%Y-%m-%d") + ", "
-    mask = (text != "") & reasons["reason"].isna()
-    reasons = reasons.copy()
-    reasons.loc[mask, "reason"] = (
-        text[mask].str[:-2] + " after the death on "
-        + death[mask].dt.strftime("%Y-%m-%d") + "; correct the dates in the file"
-    ).to_numpy(dtype=object)
-    reasons.loc[mask, "kind"] = "dated after death"
-    return reasons
+    hits = [(column, (frame[column] > death).to_numpy()) for column in later]
+    mask = np.logical_or.reduce([hit for _, hit in hits]) if hits else np.zeros_like(reasons.hit)
+    mask &= ~reasons.hit
+    if not mask.any():
+        return
+    rows = np.flatnonzero(mask)
+    text = np.full(len(rows), "", dtype=object)
+    for column, hit in hits:
+        inside = hit[rows]
+        if inside.any():
+            days = frame[column].iloc[rows[inside]].dt.strftime("%Y-%m-%d")
+            text[inside] = text[inside] + f"{column} " + days.to_numpy(dtype=object) + ", "
+    deaths = death.iloc[rows].dt.strftime("%Y-%m-%d").to_numpy(dtype=object)
+    reasons.add(mask, [f"{t[:-2]} after the death on {d}; correct the dates in the file"
+                       for t, d in zip(text, deaths, strict=True)], "dated after death")
 
 
-def _exclusions(records: Records, reasons: pd.DataFrame) -> pd.DataFrame:
-    hit = reasons["reason"].notna()
+def _exclusions(records: Records, reasons: _Reasons) -> pd.DataFrame:
+    positions = np.flatnonzero(reasons.hit)
+    frame = records.frame
     new = pd.DataFrame(
         {
-            "row": (reasons.index[hit] + 1).astype(np.int64),
-            "recipient": records.frame.loc[hit, records.spec.columns.recipient].to_numpy(),
-            "reason": reasons.loc[hit, "reason"].to_numpy(dtype=object),
-            "program": records.frame.loc[hit, records.spec.columns.program].to_numpy(),
-            "kind": reasons.loc[hit, "kind"].to_numpy(dtype=object),
+            "row": (frame.index[positions] + 1).astype(np.int64),
+            "recipient": frame[records.spec.columns.recipient].to_numpy()[positions],
+            "reason": reasons.reason[positions],
+            "program": frame[records.spec.columns.program].to_numpy()[positions],
+            "kind": reasons.kind[positions],
         }
     )
     parts = [p for p in (records.exclusions, new) if len(p)]

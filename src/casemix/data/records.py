@@ -243,7 +243,9 @@ def read_records(
     _check_records(frame, spec, stamp, ledger, day)
     excluded = ledger.excluded
     exclusions = _exclusion_frame(frame, spec, ledger, excluded)
-    kept = frame.loc[~excluded].copy()
+    # The full frame is not kept: without exclusions it becomes the kept frame itself, else
+    # one copy of the kept rows (take, unlike a masked .loc, needs no second copy to write).
+    kept = frame.take(np.flatnonzero(~excluded)) if excluded.any() else frame
     kept, corrections = _correct(kept, spec, stamp)
     return Records(
         frame=kept,
@@ -718,7 +720,7 @@ def _numbers(series: pd.Series, binary: bool,
                 dotted = text.str.contains(".", regex=False, na=False)
                 text = text.where(~dotted).str.replace(",", ".", regex=False)
             values = pd.to_numeric(text, errors="coerce").astype(float)
-    allowed = values.isin([0.0, 1.0]) if binary else np.isfinite(values)
+    allowed = ((values == 0.0) | (values == 1.0)) if binary else np.isfinite(values)
     return values.where(allowed), present
 
 
