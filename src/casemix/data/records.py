@@ -334,7 +334,7 @@ def _read_table(path: Path, spec: Spec) -> tuple[pa.Table, pd.DataFrame]:
         raise InputError(f"records file '{path}' has no data rows (only a header).")
     if suffix in _PARQUET_SUFFIXES:
         return table, _emptied_frame([])
-    return _apply_missing_tokens(table, spec.missing_tokens)
+    return _apply_missing_tokens(table, spec.missing_tokens, spec.columns.recipient)
 
 
 def _read_parquet(path: Path) -> pa.Table:
@@ -403,9 +403,14 @@ def _read_csv_pandas(path: Path, spec: Spec) -> pa.Table:
 
 
 def _text_frame(table: pa.Table) -> pd.DataFrame:
-    """Text columns of a table as object columns (missing cells None)."""
-    return pd.DataFrame({name: pd.Series(table[name].to_numpy(zero_copy_only=False), dtype=object)
-                         for name in table.column_names})
+    """Text columns (plain or dictionary-encoded) as object columns (missing cells None)."""
+    return pd.DataFrame({name: pd.Series(_decoded(table[name]).to_numpy(zero_copy_only=False),
+                                         dtype=object) for name in table.column_names})
+
+
+def _decoded(column: pa.ChunkedArray) -> pa.ChunkedArray:
+    kind = column.type
+    return column.cast(kind.value_type) if pa.types.is_dictionary(kind) else column
 def _check_header(path: Path, spec: Spec) -> list[str]:
     """Refuse a header naming a column twice, or one written with another separator.
 
@@ -466,23 +471,47 @@ def _check_line_breaks(raw: pd.DataFrame, spec: Spec, path: Path) -> None:
     )
 
 
-def _apply_missing_tokens(table: pa.Table,
-                          tokens: tuple[str, ...]) -> tuple[pa.Table, pd.DataFrame]:
-    """Empty the cells whose stripped text is a token; count them per token and column."""
+def _apply_missing_tokens(table: pa.Table, tokens: tuple[str, ...],
+                          ids: str) -> tuple[pa.Table, pd.DataFrame]:
+    """Empty the cells whose stripped text is a token; count them per token and column.
+
+    Every column but the ids (mostly distinct) is dictionary-encoded first, so that the
+    stripping and the token look-up run over its distinct cells only; the reader parses the
+    encoded columns from their dictionaries (:func:`_by_distinct`).
+    """
     counts = []
     value_set = pa.array(tokens, type=pa.string())
     for i, name in enumerate(table.column_names):
         column = table.column(i)
-        text = pc.utf8_trim_whitespace(column)
-        hit = pc.is_in(text, value_set=value_set)
-        if not pc.any(hit).as_py():
-            continue
-        found = pc.value_counts(pc.filter(text, hit))
-        for token, n in zip(found.field("values").to_pylist(), found.field("counts").to_pylist(),
-                            strict=True):
+        if name == ids:
+            text = pc.utf8_trim_whitespace(column)
+            hit = pc.is_in(text, value_set=value_set)
+            if not pc.any(hit).as_py():
+                continue
+            found = pc.value_counts(pc.filter(text, hit))
+            found = zip(found.field("values").to_pylist(), found.field("counts").to_pylist(),
+                        strict=True)
+            column = pc.if_else(hit, pa.scalar(None, pa.string()), column)
+        else:
+            encoded = column.combine_chunks().dictionary_encode()
+            text = pc.utf8_trim_whitespace(encoded.dictionary)
+            hit = pc.is_in(text, value_set=value_set).to_numpy(zero_copy_only=False)
+            found = {}
+            if hit.any():
+                indices = encoded.indices.to_numpy()
+                cells = np.bincount(indices, minlength=len(hit))
+                for token, n in zip(text.filter(pa.array(hit)).to_pylist(), cells[hit].tolist(),
+                                    strict=True):
+                    found[token] = found.get(token, 0) + n
+                emptied = hit[indices]
+                encoded = pa.DictionaryArray.from_arrays(
+                    pa.array(np.where(emptied, 0, indices), mask=emptied), encoded.dictionary)
+            found = found.items()
+            column = pa.chunked_array([encoded])
+        for token, n in found:
             if token != "":  # an empty cell is simply empty
                 counts.append((token, name, int(n)))
-        table = table.set_column(i, name, pc.if_else(hit, pa.scalar(None, pa.string()), column))
+        table = table.set_column(i, name, column)
     return table, _emptied_frame(counts)
 
 
@@ -566,6 +595,18 @@ def _by_distinct(column: pa.ChunkedArray, parse: Callable[[pd.Series], object]) 
     arrays when ``parse`` returns a tuple.
     """
     kind = column.type
+    if pa.types.is_dictionary(kind) and (pa.types.is_string(kind.value_type)
+                                         or pa.types.is_large_string(kind.value_type)):
+        encoded = column.combine_chunks()
+        present = np.asarray(encoded.indices.is_valid())
+        values = encoded.indices.fill_null(0).to_numpy().astype(np.int64)
+        # only the values some cell holds (a dictionary may hold others)
+        used = np.flatnonzero(np.bincount(values[present], minlength=len(encoded.dictionary)))
+        dictionary = encoded.dictionary.take(pa.array(used))
+        remap = np.zeros(len(encoded.dictionary), dtype=np.int64)
+        remap[used] = np.arange(len(used))
+        codes = np.where(present, remap[values], len(used))
+        return _parse_distinct(dictionary, codes, parse)
     if pa.types.is_dictionary(kind):
         column, kind = column.cast(kind.value_type), kind.value_type
     if not (pa.types.is_string(kind) or pa.types.is_large_string(kind)
@@ -573,10 +614,16 @@ def _by_distinct(column: pa.ChunkedArray, parse: Callable[[pd.Series], object]) 
         out = parse(_series(column))
         return tuple(r.to_numpy() for r in out) if isinstance(out, tuple) else out.to_numpy()
     encoded = column.combine_chunks().dictionary_encode()
-    distinct = np.empty(len(encoded.dictionary) + 1, dtype=object)
-    distinct[:-1] = encoded.dictionary.to_pandas().to_numpy(dtype=object)
+    codes = encoded.indices.fill_null(len(encoded.dictionary)).to_numpy()
+    return _parse_distinct(encoded.dictionary, codes, parse)
+
+
+def _parse_distinct(dictionary: pa.Array, codes: np.ndarray,
+                    parse: Callable[[pd.Series], object]) -> object:
+    """``parse`` the distinct cells (and a missing one, code ``len(dictionary)``), to rows."""
+    distinct = np.empty(len(dictionary) + 1, dtype=object)
+    distinct[:-1] = dictionary.to_pandas().to_numpy(dtype=object)
     distinct[-1] = None  # what a missing cell gives
-    codes = encoded.indices.fill_null(len(distinct) - 1).to_numpy()
     out = parse(pd.Series(distinct, dtype=object))
     if isinstance(out, tuple):
         return tuple(r.to_numpy()[codes] for r in out)
