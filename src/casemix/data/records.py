@@ -873,14 +873,19 @@ def _correct(kept: pd.DataFrame, spec: Spec,
     last = spec.columns.last_seen
     notes = []
     if spec.event_columns:
-        events = kept[list(spec.event_columns)]
+        # As int64 nanoseconds NaT is the smallest value: a row's maximum skips it.
+        never = np.iinfo(np.int64).min
+        events = np.stack([_nanoseconds(kept[c]) for c in spec.event_columns])
         if cutoff is not None:
-            notes.append(((events > cutoff).any(axis=1), "event_after_cutoff"))
-            events = events.where(events <= cutoff)
-        latest = events.max(axis=1)
-        extend = latest > kept[last]
+            cut = _nanoseconds(pd.Series([cutoff]))[0]
+            notes.append(((events > cut).any(axis=0), "event_after_cutoff"))
+            events = np.where(events <= cut, events, never)
+        latest = events.max(axis=0)
+        seen = _nanoseconds(kept[last])
+        extend = (latest > seen) & (seen != never)
         notes.append((extend, "event_after_last_seen"))
-        kept[last] = kept[last].mask(extend, latest)
+        kept[last] = kept[last].mask(extend, pd.Series(latest.view("datetime64[ns]"),
+                                                       index=kept.index))
     if cutoff is not None:
         late = kept[last] > cutoff
         notes.append((late, "last_seen_after_cutoff"))
@@ -898,6 +903,11 @@ def _correct(kept: pd.DataFrame, spec: Spec,
     corrections = pd.concat(parts, ignore_index=True) if parts else pd.DataFrame(columns=columns)
     corrections = corrections.sort_values(["row", "kind"], kind="stable", ignore_index=True)
     return kept, corrections[columns]
+
+
+def _nanoseconds(dates: pd.Series) -> np.ndarray:
+    """Dates as int64 nanoseconds since 1970 (NaT: the smallest int64)."""
+    return dates.to_numpy(dtype="datetime64[ns]").view(np.int64)
 
 
 def _warning_counts(corrections: pd.DataFrame) -> pd.DataFrame:
