@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from casemix.data.records import Records, to_timestamp
+from casemix.data.records import Records, _nanoseconds, to_timestamp
 from casemix.errors import InputError
 
 #: Exclusion kind of a transplant outside the cohort window.
@@ -216,10 +216,10 @@ def build_cohort(
     fu = follow_up(
         out[spec.columns.transplant_date],
         out[spec.columns.last_seen],
-        out[list(dates)].min(axis=1),
+        _earliest(out, dates),
         stamp,
         horizon,
-        out[list(chosen.censor_at)].min(axis=1) if chosen.censor_at else None,
+        _earliest(out, chosen.censor_at) if chosen.censor_at else None,
     )
     out["time"] = fu["time"].mask(fu["time"] == 0, DAY_ZERO_TIME)
     out["event"] = fu["event"]
@@ -236,6 +236,15 @@ def build_cohort(
         lost_after_days=float(lost_after_days),
         corrections=_kept_corrections(records, out.index),
     )
+
+
+def _earliest(frame: pd.DataFrame, columns: tuple[str, ...]) -> pd.Series:
+    """Each row's earliest date of ``columns`` (NaT where all are NaT), datetime64[ns]."""
+    never, last = np.iinfo(np.int64).min, np.iinfo(np.int64).max  # NaT is the smallest
+    days = np.stack([_nanoseconds(frame[c]) for c in columns])
+    earliest = np.where(days == never, last, days).min(axis=0)
+    earliest[earliest == last] = never
+    return pd.Series(earliest.view("datetime64[ns]"), index=frame.index)
 
 
 def _kept_corrections(records: Records, kept: pd.Index) -> pd.DataFrame:
