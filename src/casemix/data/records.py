@@ -352,41 +352,61 @@ def _read_csv_arrow(path: Path, spec: Spec, header: list[str]) -> pa.Table | Non
     Gives the cells pandas' reader gives with ``dtype=str, skipinitialspace=True,
     na_filter=False``, or None where the two could differ (a quote in the header, a quote
     after leading spaces, a file Arrow refuses: ragged rows, bad UTF-8, an unclosed quote);
-    the caller then reads the file with pandas, whose messages name the problem.
+    the caller then reads the file with pandas, whose messages name the problem. Every column
+    but the recipient ids comes dictionary-encoded (the reader builds the dictionaries while
+    it converts), so that the checks below and the parsing look at each distinct cell once.
     """
     import pyarrow.csv as pacsv
 
     if not header or any('"' in name for name in header):
         return None
     fields = [f"f{i}" for i in range(len(header))]
+    coded = pa.dictionary(pa.int32(), pa.string())
+    kinds = {field: pa.string() if name.strip() == spec.columns.recipient else coded
+             for field, name in zip(fields, header, strict=True)}
     try:
         table = pacsv.read_csv(
             path,
             read_options=pacsv.ReadOptions(skip_rows=1, column_names=fields),
             parse_options=pacsv.ParseOptions(delimiter=spec.delimiter, newlines_in_values=True),
             convert_options=pacsv.ConvertOptions(
-                column_types=dict.fromkeys(fields, pa.string()), strings_can_be_null=False,
+                column_types=kinds, strings_can_be_null=False,
                 quoted_strings_can_be_null=False, null_values=[],
             ),
-        )
+        ).unify_dictionaries()
     except pa.ArrowException:
         return None
     with path.open("rb") as handle, mmap.mmap(handle.fileno(), 0, access=mmap.ACCESS_READ) as data:
         quoted = data.find(b'"') >= 0  # without a quote no cell can hold a line break
     columns = []
     for column in table.columns:
-        if pc.any(pc.starts_with(column, " ")).as_py():  # skipinitialspace
-            if quoted and pc.any(pc.match_substring_regex(column, '^ +"')).as_py():
+        if pa.types.is_dictionary(column.type):
+            column = column.combine_chunks()
+        cells = _cells(column)
+        if pc.any(pc.starts_with(cells, " ")).as_py():  # skipinitialspace
+            if quoted and pc.any(pc.match_substring_regex(cells, '^ +"')).as_py():
                 return None
-            column = pc.utf8_ltrim(column, characters=" ")
-        columns.append(column)
+            cells = pc.utf8_ltrim(cells, characters=" ")
+            column = (pa.DictionaryArray.from_arrays(column.indices, cells)
+                      if pa.types.is_dictionary(column.type) else cells)
+        columns.append(pa.chunked_array([column]) if isinstance(column, pa.Array) else column)
     table = pa.table(columns, names=[name.lstrip(" ") for name in header])
     breaks = quoted and any(
-        pc.any(pc.match_substring(table[c], mark)).as_py()
+        pc.any(pc.match_substring(_cells(table[c]), mark)).as_py()
         for c in spec.required_columns if c in table.column_names for mark in "\r\n")
     if breaks:
         _check_line_breaks(_text_frame(table), spec, path)
     return table
+
+
+def _cells(column: pa.Array | pa.ChunkedArray) -> pa.Array | pa.ChunkedArray:
+    """The text to look at: a dictionary-encoded column's dictionary (each value once; every
+    value of a dictionary the CSV reader built occurs in some cell), else the column."""
+    if not pa.types.is_dictionary(column.type):
+        return column
+    if isinstance(column, pa.ChunkedArray):
+        column = column.combine_chunks()
+    return column.dictionary
 
 
 def _read_csv_pandas(path: Path, spec: Spec) -> pa.Table:
@@ -475,9 +495,9 @@ def _apply_missing_tokens(table: pa.Table, tokens: tuple[str, ...],
                           ids: str) -> tuple[pa.Table, pd.DataFrame]:
     """Empty the cells whose stripped text is a token; count them per token and column.
 
-    Every column but the ids (mostly distinct) is dictionary-encoded first, so that the
-    stripping and the token look-up run over its distinct cells only; the reader parses the
-    encoded columns from their dictionaries (:func:`_by_distinct`).
+    Every column but the ids (mostly distinct) is dictionary-encoded (if the CSV reader has
+    not done it), so that the stripping and the token look-up run over its distinct cells
+    only; the reader parses the encoded columns from their dictionaries (:func:`_by_distinct`).
     """
     counts = []
     value_set = pa.array(tokens, type=pa.string())
@@ -493,7 +513,9 @@ def _apply_missing_tokens(table: pa.Table, tokens: tuple[str, ...],
                         strict=True)
             column = pc.if_else(hit, pa.scalar(None, pa.string()), column)
         else:
-            encoded = column.combine_chunks().dictionary_encode()
+            encoded = column.combine_chunks()
+            if not pa.types.is_dictionary(encoded.type):  # read by pandas' reader
+                encoded = encoded.dictionary_encode()
             text = pc.utf8_trim_whitespace(encoded.dictionary)
             hit = pc.is_in(text, value_set=value_set).to_numpy(zero_copy_only=False)
             found = {}
