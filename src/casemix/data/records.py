@@ -620,14 +620,17 @@ def _by_distinct(column: pa.ChunkedArray, parse: Callable[[pd.Series], object]) 
     if pa.types.is_dictionary(kind) and (pa.types.is_string(kind.value_type)
                                          or pa.types.is_large_string(kind.value_type)):
         encoded = column.combine_chunks()
-        present = np.asarray(encoded.indices.is_valid())
-        values = encoded.indices.fill_null(0).to_numpy().astype(np.int64)
-        # only the values some cell holds (a dictionary may hold others)
-        used = np.flatnonzero(np.bincount(values[present], minlength=len(encoded.dictionary)))
-        dictionary = encoded.dictionary.take(pa.array(used))
-        remap = np.zeros(len(encoded.dictionary), dtype=np.int64)
-        remap[used] = np.arange(len(used))
-        codes = np.where(present, remap[values], len(used))
+        indices, dictionary = encoded.indices, encoded.dictionary
+        filled = indices.null_count == 0
+        values = indices.to_numpy() if filled else indices.fill_null(0).to_numpy()
+        present = None if filled else np.asarray(indices.is_valid())
+        cells = np.bincount(values if filled else values[present], minlength=len(dictionary))
+        if not cells.all():  # only the values some cell holds (a dictionary may hold others)
+            used = np.flatnonzero(cells)
+            remap = np.zeros(len(dictionary), dtype=np.int64)
+            remap[used] = np.arange(len(used))
+            dictionary, values = dictionary.take(pa.array(used)), remap[values]
+        codes = values if filled else np.where(present, values, len(dictionary))
         return _parse_distinct(dictionary, codes, parse)
     if pa.types.is_dictionary(kind):
         column, kind = column.cast(kind.value_type), kind.value_type
