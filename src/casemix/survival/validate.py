@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 
 from casemix.errors import InputError, plural
-from casemix.survival._gram import weighted_variance
+from casemix.survival._gram import BLOCK_ROWS, weighted_variance
 
 __all__ = [
     "as_matrix",
@@ -109,8 +109,13 @@ def check_columns(
     computes anyway (a collinear X makes it singular).
     """
     center = weights @ X / weights.sum()
-    spread = X.max(axis=0) - X.min(axis=0)
-    constant = np.flatnonzero(spread == 0)
+    # A column is constant when every row equals the first (X is finite); most columns
+    # already vary within the first rows, and only the others are read to the end.
+    first = X[:1]
+    varies = (X[:BLOCK_ROWS] != first).any(axis=0)
+    rest = np.flatnonzero(~varies)
+    varies[rest] = (X[:, rest] != first[:, rest]).any(axis=0)
+    constant = np.flatnonzero(~varies)
     if constant.size:
         listed = ", ".join(f"'{names[j]}'" for j in constant)
         raise InputError(
