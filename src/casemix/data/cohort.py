@@ -45,7 +45,7 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from casemix.data.records import Records, _nanoseconds, to_timestamp
+from casemix.data.records import Records, nanoseconds, to_timestamp
 from casemix.errors import InputError
 
 #: Exclusion kind of a transplant outside the cohort window.
@@ -241,7 +241,7 @@ def build_cohort(
 def _earliest(frame: pd.DataFrame, columns: tuple[str, ...]) -> pd.Series:
     """Each row's earliest date of ``columns`` (NaT where all are NaT), datetime64[ns]."""
     never, last = np.iinfo(np.int64).min, np.iinfo(np.int64).max  # NaT is the smallest
-    days = np.stack([_nanoseconds(frame[c]) for c in columns])
+    days = np.stack([nanoseconds(frame[c]) for c in columns])
     earliest = np.where(days == never, last, days).min(axis=0)
     earliest[earliest == last] = never
     return pd.Series(earliest.view("datetime64[ns]"), index=frame.index)

@@ -38,7 +38,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from casemix.data.records import _is_text_column, clean_text, format_rows
+from casemix.data.records import clean_text, format_rows, is_text_column
 from casemix.data.spec import SPLINE_KNOT_QUANTILES, Covariate, Spec, closest
 from casemix.errors import InputError, ModelFileError, SpecError, plural
 
@@ -441,7 +441,7 @@ def _distinct_text(series: pd.Series) -> tuple[np.ndarray, np.ndarray]:
     The cells of a text column are cleaned once per distinct cell (the last code stands for
     the missing cells); other columns are cleaned whole first, so that 1 and 1.0 stay apart.
     """
-    if _is_text_column(series):
+    if is_text_column(series):
         codes, distinct = pd.factorize(series)
         cleaned = clean_text(pd.Series(np.asarray(distinct, dtype=object), dtype=object))
     else:

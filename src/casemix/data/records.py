@@ -46,6 +46,8 @@ __all__ = [
     "clean_text",
     "count_by_kind",
     "format_rows",
+    "is_text_column",
+    "nanoseconds",
     "read_records",
     "to_timestamp",
 ]
@@ -575,7 +577,8 @@ def _check_columns(names: list[str], spec: Spec, path: Path) -> None:
     )
 
 
-def _is_text_column(series: pd.Series) -> bool:
+def is_text_column(series: pd.Series) -> bool:
+    """Whether every filled cell of ``series`` is text (an all-missing column counts as text)."""
     return pd.api.types.infer_dtype(series, skipna=True) in ("string", "empty")
 
 
@@ -585,7 +588,7 @@ def clean_text(series: pd.Series) -> pd.Series:
     Non-text cells (numbers from Parquet) are shown as text, so ``7`` becomes ``"7"``. A
     column of text is cleaned once per distinct value.
     """
-    if len(series) > _DISTINCT_FROM and _is_text_column(series):
+    if len(series) > _DISTINCT_FROM and is_text_column(series):
         codes, distinct = pd.factorize(series)  # missing cells get code -1
         cleaned = _clean_cells(pd.Series(np.asarray(distinct, dtype=object), dtype=object))
         out = np.append(cleaned.to_numpy(dtype=object), None)[codes]
@@ -736,7 +739,7 @@ def _parse_dates(
     if pd.api.types.is_datetime64_any_dtype(series):
         present = series.notna()
         dates = series.dt.tz_localize(None) if series.dt.tz is not None else series
-    elif _is_text_column(series):
+    elif is_text_column(series):
         text = clean_text(series)
         present = text.notna()
         dates = pd.to_datetime(text, format=fmt, errors="coerce")
@@ -900,13 +903,13 @@ def _correct(kept: pd.DataFrame, spec: Spec,
     if spec.event_columns:
         # As int64 nanoseconds NaT is the smallest value: a row's maximum skips it.
         never = np.iinfo(np.int64).min
-        events = np.stack([_nanoseconds(kept[c]) for c in spec.event_columns])
+        events = np.stack([nanoseconds(kept[c]) for c in spec.event_columns])
         if cutoff is not None:
-            cut = _nanoseconds(pd.Series([cutoff]))[0]
+            cut = nanoseconds(pd.Series([cutoff]))[0]
             notes.append(((events > cut).any(axis=0), "event_after_cutoff"))
             events = np.where(events <= cut, events, never)
         latest = events.max(axis=0)
-        seen = _nanoseconds(kept[last])
+        seen = nanoseconds(kept[last])
         extend = (latest > seen) & (seen != never)
         notes.append((extend, "event_after_last_seen"))
         kept[last] = kept[last].mask(extend, pd.Series(latest.view("datetime64[ns]"),
@@ -930,7 +933,7 @@ def _correct(kept: pd.DataFrame, spec: Spec,
     return kept, corrections[columns]
 
 
-def _nanoseconds(dates: pd.Series) -> np.ndarray:
+def nanoseconds(dates: pd.Series) -> np.ndarray:
     """Dates as int64 nanoseconds since 1970 (NaT: the smallest int64)."""
     return dates.to_numpy(dtype="datetime64[ns]").view(np.int64)
 
